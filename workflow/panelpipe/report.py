@@ -1,0 +1,222 @@
+"""Report: results.json, estimates.csv and one self-contained HTML page.
+
+Everything here is a pure function of the stage outputs; the HTML embeds its
+styles and figures (inline SVG), loads nothing from the network and escapes
+every user-supplied string (Jinja2 autoescaping).
+"""
+
+from __future__ import annotations
+
+import io
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import jinja2
+import matplotlib
+
+matplotlib.use("svg")
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+import pandas as pd  # noqa: E402
+
+from .compare import TestResult  # noqa: E402
+from .estimate import ESTIMATOR_LABELS, INFERENCE_LABELS, INTERCEPT, ModelResult  # noqa: E402
+from .findings import Finding  # noqa: E402
+
+__all__ = ["SCHEMA_VERSION", "estimates_table", "recommend", "render_html", "results_document"]
+
+SCHEMA_VERSION = 1
+
+_ESTIMATES_COLUMNS = ["model", "term", "inference", "estimate", "std_error", "ci_low",
+                      "ci_high", "p_value"]
+
+
+def estimates_table(models: Mapping[str, ModelResult]) -> pd.DataFrame:
+    """Tidy estimates: one row per model, term (regressors and intercept) and inference."""
+    rows = []
+    for key, m in models.items():
+        terms = [t for t in m.params.index if t in m.terms or t == INTERCEPT]
+        for inf_key, inf in m.inference.items():
+            for t in terms:
+                rows.append((key, t, inf_key, m.params[t], inf.std_errors[t], inf.ci_low[t],
+                             inf.ci_high[t], inf.p_values[t]))
+    return pd.DataFrame(rows, columns=_ESTIMATES_COLUMNS)
+
+
+def recommend(models: Mapping[str, ModelResult], tests: Mapping[str, TestResult],
+              alpha: float = 0.05) -> tuple[str, list[str]]:
+    """Which estimator the data support, with the reasons in plain words."""
+    reasons: list[str] = []
+    haus = tests.get("hausman")
+    if "fixed_effects" in models and "random_effects" in models and haus and haus.valid:
+        assert haus.p_value is not None
+        if haus.p_value < alpha:
+            reasons.append(
+                f"The Hausman test rejects random effects (p = {haus.p_value:.3g}): the unit "
+                "effects appear correlated with the regressors, so random effects and pooled "
+                "OLS are likely biased."
+            )
+            return "fixed_effects", reasons
+        reasons.append(
+            f"The Hausman test does not reject random effects (p = {haus.p_value:.3g}); random "
+            "effects are then more precise. The classical test assumes homoskedastic, serially "
+            "uncorrelated errors; check the audit before relying on it."
+        )
+        return "random_effects", reasons
+    for key in ("fixed_effects", "first_difference", "correlated_random_effects",
+                "random_effects", "pooled_ols", "between"):
+        if key in models:
+            reasons.append(
+                f"{ESTIMATOR_LABELS[key]} is the most robust estimator that ran; no comparison "
+                "test was available to choose between estimators."
+            )
+            return key, reasons
+    raise ValueError("no model was estimated")
+
+
+def results_document(
+    *,
+    analysis: str,
+    run: str,
+    summary: Mapping[str, Any],
+    findings: Sequence[Finding],
+    status: str,
+    models: Mapping[str, ModelResult],
+    tests: Mapping[str, TestResult],
+    recommended: str,
+    reasons: Sequence[str],
+) -> dict[str, Any]:
+    """The ``results.json`` document, schema_version 1 (CONTRACT.md)."""
+    return {
+        "schema_version": SCHEMA_VERSION,
+        "analysis": analysis,
+        "run_id": run,
+        "data": {k: summary.get(k) for k in
+                 ("rows", "units", "periods", "balanced", "first_period", "last_period")},
+        "validation": {"status": status, "findings": [f.to_dict() for f in findings]},
+        "models": {
+            k: {kk: v for kk, v in m.to_dict().items() if kk not in {"inference", "all_params"}}
+            for k, m in models.items()
+        },
+        "tests": {k: t.to_dict() for k, t in tests.items()},
+        "recommendation": {"estimator": recommended, "reasons": list(reasons)},
+        "diagnostics": {},
+    }
+
+
+# ---------------------------------------------------------------- figures
+
+_PALETTE = ["#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00"]  # Okabe-Ito
+
+
+def _svg(fig: Any) -> str:
+    buf = io.StringIO()
+    fig.savefig(buf, format="svg", bbox_inches="tight")
+    plt.close(fig)
+    text = buf.getvalue()
+    return text[text.index("<svg"):]
+
+
+def coefficient_figure(models: Mapping[str, ModelResult], regressors: Sequence[str]) -> str:
+    """Coefficients of every regressor across estimators, with headline intervals."""
+    n = len(regressors)
+    fig, axes = plt.subplots(1, n, figsize=(3.1 * n, 0.45 * len(models) + 1.4), squeeze=False)
+    keys = list(models)
+    for ax, term in zip(axes[0], regressors):
+        for i, key in enumerate(keys):
+            m = models[key]
+            if term not in m.terms:
+                continue
+            inf = m.inference[m.headline_inference]
+            ax.errorbar(m.params[term], i, xerr=[[m.params[term] - inf.ci_low[term]],
+                                                 [inf.ci_high[term] - m.params[term]]],
+                        fmt="o", color=_PALETTE[i % len(_PALETTE)], capsize=3)
+        ax.axvline(0.0, color="#999999", lw=0.8, ls=":")
+        ax.set_yticks(range(len(keys)))
+        ax.set_yticklabels([ESTIMATOR_LABELS[k] for k in keys] if ax is axes[0][0] else [])
+        ax.set_ylim(len(keys) - 0.5, -0.5)
+        ax.set_title(term, fontsize=10)
+        ax.tick_params(labelsize=8)
+    fig.tight_layout()
+    return _svg(fig)
+
+
+def presence_figure(panel: pd.DataFrame, unit: str, period: str) -> str:
+    """Which unit was observed in which period (filled = observed)."""
+    grid = pd.crosstab(panel[unit], panel[period]).clip(upper=1)
+    shown = grid.iloc[:80]
+    fig, ax = plt.subplots(figsize=(min(0.32 * grid.shape[1] + 2, 11),
+                                    min(0.14 * len(shown) + 1.2, 9)))
+    ax.imshow(shown.to_numpy(), aspect="auto", cmap="Blues", vmin=0, vmax=1.3,
+              interpolation="nearest")
+    ax.set_xticks(range(grid.shape[1]))
+    ax.set_xticklabels([str(c) for c in grid.columns], rotation=90, fontsize=7)
+    step = max(1, len(shown) // 20)
+    ax.set_yticks(range(0, len(shown), step))
+    ax.set_yticklabels([str(u) for u in shown.index[::step]], fontsize=7)
+    ax.set_xlabel(period)
+    ax.set_ylabel(unit)
+    if len(grid) > len(shown):
+        ax.set_title(f"first {len(shown)} of {len(grid)} units", fontsize=8)
+    fig.tight_layout()
+    return _svg(fig)
+
+
+def variance_share_figure(panel: pd.DataFrame, unit: str, regressors: Sequence[str]) -> str:
+    """Within-unit and between-unit share of each regressor's variance."""
+    within = []
+    for col in regressors:
+        x = panel[col].astype(float)
+        total = float(x.var(ddof=0))
+        w = float((x - x.groupby(panel[unit]).transform("mean")).var(ddof=0))
+        within.append(w / total if total > 0 else 0.0)
+    fig, ax = plt.subplots(figsize=(6, 0.4 * len(regressors) + 1))
+    y = np.arange(len(regressors))
+    ax.barh(y, within, color=_PALETTE[0], label="within units")
+    ax.barh(y, 1 - np.asarray(within), left=within, color=_PALETTE[1], label="between units")
+    ax.set_yticks(y)
+    ax.set_yticklabels(list(regressors), fontsize=8)
+    ax.set_xlim(0, 1)
+    ax.invert_yaxis()
+    ax.legend(fontsize=8, loc="lower right", framealpha=0.9)
+    ax.set_xlabel("share of variance")
+    fig.tight_layout()
+    return _svg(fig)
+
+
+# ---------------------------------------------------------------- HTML
+
+def _fmt(value: Any, digits: int = 4) -> str:
+    if value is None:
+        return "–"
+    if isinstance(value, float):
+        if not np.isfinite(value):
+            return "–"
+        return f"{value:.{digits}g}" if abs(value) >= 1e4 or abs(value) < 1e-3 else \
+            f"{value:.{digits}f}"
+    return str(value)
+
+
+def _pvalue(p: float | None) -> str:
+    if p is None:
+        return "–"
+    return "< 0.001" if p < 0.001 else f"{p:.3f}"
+
+
+_ENV = jinja2.Environment(
+    loader=jinja2.PackageLoader("panelpipe", "templates"),
+    autoescape=True,
+    undefined=jinja2.StrictUndefined,
+    trim_blocks=True,
+    lstrip_blocks=True,
+)
+_ENV.filters["num"] = _fmt
+_ENV.filters["pvalue"] = _pvalue
+
+
+def render_html(context: Mapping[str, Any]) -> str:
+    """Render the report page from a context built by the report step."""
+    context = dict(context)
+    context.setdefault("estimator_labels", ESTIMATOR_LABELS)
+    context.setdefault("inference_labels", INFERENCE_LABELS)
+    return _ENV.get_template("report.html.j2").render(**context)

@@ -1,0 +1,87 @@
+"""Runs: content-addressed run folders, atomic writes and the ``latest`` pointer.
+
+A run's id is a hash of everything that determines its results: the bytes of
+every input file in order, the analysis settings, and the panelpipe code. The
+same inputs give the same id (so a rerun finds its outputs and does no work);
+any change gives a new folder, and no run writes into another run's folder.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import tempfile
+from collections.abc import Iterable, Mapping
+from pathlib import Path
+from typing import Any
+
+from . import __version__
+from .config import REPO_ROOT
+
+__all__ = [
+    "atomic_write_text",
+    "code_fingerprint",
+    "file_digest",
+    "run_id",
+    "update_latest",
+]
+
+_CHUNK = 1 << 20
+
+
+def file_digest(path: Path) -> str:
+    """SHA-256 of a file's bytes, read in chunks."""
+    h = hashlib.sha256()
+    with Path(path).open("rb") as fh:
+        while chunk := fh.read(_CHUNK):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def code_fingerprint(root: Path = REPO_ROOT) -> str:
+    """Hash of the package, the workflow rules and scripts and the templates."""
+    h = hashlib.sha256(__version__.encode())
+    patterns = ("workflow/panelpipe/**/*.py", "workflow/panelpipe/templates/*",
+                "workflow/rules/*.smk", "workflow/scripts/*.py", "Snakefile")
+    files = sorted({p for pat in patterns for p in root.glob(pat) if p.is_file()})
+    for p in files:
+        h.update(p.relative_to(root).as_posix().encode())
+        h.update(p.read_bytes())
+    return h.hexdigest()
+
+
+def run_id(digests: Iterable[str], settings: Mapping[str, Any], code: str) -> str:
+    """The run id: 16 hex digits of a hash over inputs, settings and code.
+
+    Source paths are not hashed, only their contents in order, so moving a
+    delivery to another folder does not start a new run.
+    """
+    payload = {
+        "inputs": list(digests),
+        "settings": {k: v for k, v in settings.items() if k != "sources"},
+        "code": code,
+    }
+    blob = json.dumps(payload, sort_keys=True, separators=(",", ":")).encode()
+    return hashlib.sha256(blob).hexdigest()[:16]
+
+
+def atomic_write_text(path: Path, text: str) -> None:
+    """Write a file so that readers see either nothing or the whole file."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def update_latest(analysis_dir: Path, run: str) -> None:
+    """Point ``<analysis_dir>/latest`` at a completed run (a file holding its id)."""
+    atomic_write_text(Path(analysis_dir) / "latest", run + "\n")

@@ -1,0 +1,253 @@
+"""The file-level edge of each pipeline stage, called by the workflow scripts.
+
+Each function reads its inputs from files, calls the pure functions of its
+stage and writes its outputs atomically. Nothing here is statistics.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import datetime as dt
+import json
+import platform
+import sys
+from collections.abc import Iterator, Mapping, Sequence
+from importlib import metadata
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+import yaml
+
+from . import __version__
+from .compare import TestResult, hausman
+from .config import AnalysisSettings, analysis_settings, resolve_sources
+from .estimate import INTERCEPT, ModelResult, estimate_all, make_design
+from .findings import Finding, PanelpipeError
+from .ingest import read_panel
+from .report import (
+    coefficient_figure,
+    estimates_table,
+    presence_figure,
+    recommend,
+    render_html,
+    results_document,
+    variance_share_figure,
+)
+from .runs import atomic_write_text, file_digest, update_latest
+from .validate import validate_panel
+
+__all__ = [
+    "compare_step",
+    "estimate_step",
+    "ingest_step",
+    "report_step",
+    "script_guard",
+    "settings_from",
+    "validate_step",
+]
+
+
+def settings_from(name: str, analysis: Mapping[str, Any]) -> AnalysisSettings:
+    """Settings of one analysis from its (validated, defaulted) config entry."""
+    return analysis_settings({"analyses": {name: dict(analysis)}}, name)
+
+
+def _write_json(path: Path | str, doc: Any) -> None:
+    atomic_write_text(Path(path), json.dumps(doc, indent=2, ensure_ascii=False, default=str) + "\n")
+
+
+def _read_json(path: Path | str) -> Any:
+    return json.loads(Path(path).read_text(encoding="utf-8"))
+
+
+def ingest_step(settings: AnalysisSettings, panel_out: str, sources_out: str) -> None:
+    """Read and stack the sources; record each file's hash and row count."""
+    paths = resolve_sources(settings.sources, analysis=settings.name)
+    panel = read_panel(paths, settings.columns, unit=settings.unit)
+    counts = panel["_source"].value_counts(sort=False)
+    sources = [{"path": str(p), "sha256": file_digest(p), "rows": int(counts.get(str(p), 0))}
+               for p in paths]
+    Path(panel_out).parent.mkdir(parents=True, exist_ok=True)
+    panel.to_parquet(panel_out, index=False)
+    _write_json(sources_out, sources)
+
+
+def validate_step(settings: AnalysisSettings, raw_in: str, panel_out: str,
+                  validation_out: str) -> None:
+    """Validate the stacked panel; on errors write the findings and stop."""
+    raw = pd.read_parquet(raw_in)
+    result = validate_panel(raw, settings)
+    doc = {"analysis": settings.name, **result.to_dict()}
+    if result.status == "fail":
+        # Kept beside the run (not a declared output) so the failed attempt can be read.
+        _write_json(Path(validation_out).parent.parent / "validation-failed.json", doc)
+        errors = [f for f in result.findings if f.severity == "error"]
+        lines = "\n".join(f"  - [{f.code}] {f.message}" for f in errors)
+        raise PanelpipeError(
+            f"analysis {settings.name!r}: validation failed with {len(errors)} error(s); "
+            f"nothing was estimated:\n{lines}",
+            errors,
+        )
+    result.panel.to_parquet(panel_out, index=False)
+    _write_json(validation_out, doc)
+
+
+def estimate_step(settings: AnalysisSettings, panel_in: str, models_out: str) -> None:
+    """Fit every configured estimator on the validated panel."""
+    panel = pd.read_parquet(panel_in)
+    design, findings = make_design(panel, settings)
+    models, more = estimate_all(design)
+    findings += more
+    if not models:
+        raise PanelpipeError(f"analysis {settings.name!r}: no estimator could be fitted.", findings)
+    _write_json(models_out, {
+        "models": {k: m.to_dict() for k, m in models.items()},
+        "findings": [f.to_dict() for f in findings],
+    })
+
+
+def _load_models(path: str) -> tuple[dict[str, ModelResult], list[Finding]]:
+    doc = _read_json(path)
+    models = {k: ModelResult.from_dict(k, v) for k, v in doc["models"].items()}
+    findings = [Finding(f["code"], f["severity"], f["message"], f.get("where", {}))
+                for f in doc["findings"]]
+    return models, findings
+
+
+def compare_step(settings: AnalysisSettings, models_in: str, tests_out: str) -> None:
+    """Run the comparison tests between the fitted estimators."""
+    models, _ = _load_models(models_in)
+    tests: dict[str, TestResult] = {}
+    if "fixed_effects" in models and "random_effects" in models:
+        tests["hausman"] = hausman(models["fixed_effects"], models["random_effects"])
+    _write_json(tests_out, {k: {**t.to_dict(), "valid": t.valid} for k, t in tests.items()})
+
+
+def _load_tests(path: str) -> dict[str, TestResult]:
+    doc = _read_json(path)
+    return {
+        k: TestResult(v["name"], v["null"], v.get("statistic"), v.get("df"), v.get("p_value"),
+                      v.get("note", ""), v.get("invalid_reason", ""))
+        for k, v in doc.items()
+    }
+
+
+def _versions() -> dict[str, str]:
+    out = {"python": platform.python_version(), "panelpipe": __version__}
+    for pkg in ("linearmodels", "statsmodels", "pandas", "numpy", "scipy", "pyarrow",
+                "snakemake", "matplotlib", "jinja2"):
+        try:
+            out[pkg] = metadata.version(pkg)
+        except metadata.PackageNotFoundError:
+            out[pkg] = "not installed"
+    return out
+
+
+def _benchmarks(folder: Path) -> dict[str, float]:
+    times: dict[str, float] = {}
+    for tsv in sorted(folder.glob("*.tsv")):
+        try:
+            times[tsv.stem] = float(pd.read_csv(tsv, sep="\t")["s"].iloc[0])
+        except (OSError, KeyError, ValueError, IndexError):
+            continue
+    return times
+
+
+def report_step(
+    settings: AnalysisSettings,
+    run: str,
+    *,
+    sources_in: str,
+    panel_in: str,
+    validation_in: str,
+    models_in: str,
+    tests_in: str,
+    outputs: Mapping[str, str],
+    config: Mapping[str, Any],
+) -> None:
+    """Assemble results.json, estimates.csv, manifest.json and report.html."""
+    sources: Sequence[dict[str, Any]] = _read_json(sources_in)
+    validation = _read_json(validation_in)
+    models, model_findings = _load_models(models_in)
+    tests = _load_tests(tests_in)
+    panel = pd.read_parquet(panel_in)
+    findings = [Finding(f["code"], f["severity"], f["message"], f.get("where", {}))
+                for f in validation["findings"]] + model_findings
+    status = validation["status"]
+    recommended, reasons = recommend(models, tests)
+    summary = validation["summary"]
+    doc = results_document(
+        analysis=settings.name, run=run, summary=summary, findings=findings, status=status,
+        models=models, tests=tests, recommended=recommended, reasons=reasons,
+    )
+    table = estimates_table(models)
+    created = dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat()
+    run_dir = Path(outputs["html"]).parent
+    manifest = {
+        "analysis": settings.name,
+        "run_id": run,
+        "created": created,
+        "inputs": list(sources),
+        "settings": settings.to_dict(),
+        "config": dict(config),
+        "versions": _versions(),
+        "timings_seconds": _benchmarks(run_dir / "benchmarks"),
+    }
+    focus = settings.regressors[0]
+    rec = models[recommended]
+    headline = None
+    if focus in rec.terms:
+        inf = rec.inference[rec.headline_inference]
+        headline = {"estimate": float(rec.params[focus]), "std_error": float(inf.std_errors[focus]),
+                    "ci_low": float(inf.ci_low[focus]), "ci_high": float(inf.ci_high[focus]),
+                    "inference": rec.headline_inference}
+    terms = list(dict.fromkeys([*settings.regressors, INTERCEPT]))
+    html = render_html({
+        "analysis": settings.name, "run_id": run, "created": created, "version": __version__,
+        "outcome": settings.outcome, "regressors": list(settings.regressors), "focus": focus,
+        "unit": settings.unit, "period": settings.period, "level": settings.level,
+        "data": doc["data"], "summary": summary, "sources": sources, "findings": findings,
+        "validation_status": status,
+        "n_warnings": sum(f.severity == "warning" for f in findings),
+        "models": models, "tests": tests, "recommended": recommended, "reasons": reasons,
+        "headline": headline, "table_terms": terms, "intercept": INTERCEPT,
+        "inference_keys": list(settings.inference),
+        "period_effects_note": {
+            k: ("yes" if settings.period_effects and k != "between" else "no") for k in models
+        },
+        "figures": {
+            "coefficients": coefficient_figure(models, settings.regressors),
+            "presence": presence_figure(panel, settings.unit, settings.period),
+            "variance": variance_share_figure(panel, settings.unit, settings.regressors),
+        },
+        "versions": manifest["versions"],
+        "settings_yaml": yaml.safe_dump(settings.to_dict(), sort_keys=False, allow_unicode=True),
+    })
+    atomic_write_text(Path(outputs["estimates"]), table.to_csv(index=False, lineterminator="\n"))
+    _write_json(outputs["results"], doc)
+    _write_json(outputs["manifest"], manifest)
+    atomic_write_text(Path(outputs["html"]), html)
+    update_latest(run_dir.parent, run)
+
+
+@contextlib.contextmanager
+def script_guard(log_path: str) -> Iterator[None]:
+    """Run a workflow script with stderr in its log and user errors made plain.
+
+    A `PanelpipeError` is written to the log and to the terminal without a
+    traceback, and the script exits with status 1 so that Snakemake stops.
+    """
+    terminal = sys.stderr
+    Path(log_path).parent.mkdir(parents=True, exist_ok=True)
+    with open(log_path, "w", encoding="utf-8") as log:
+        sys.stderr = log
+        try:
+            yield
+        except PanelpipeError as err:
+            log.write(f"panelpipe: {err}\n")
+            terminal.write(f"\npanelpipe: {err}\n\n")
+            terminal.flush()
+            raise SystemExit(1) from None
+        finally:
+            sys.stderr = terminal

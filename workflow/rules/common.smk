@@ -1,0 +1,49 @@
+# Configuration checks, run ids and input functions shared by every rule.
+import sys
+
+from panelpipe.config import validate_config
+from panelpipe.findings import PanelpipeError
+from panelpipe.runs import code_fingerprint, file_digest, run_id
+from panelpipe.config import analysis_settings, resolve_sources
+
+try:
+    config = validate_config(config, origin="configuration")
+    CODE = code_fingerprint()
+    RUNS = {}
+    for _name in config["analyses"]:
+        _settings = analysis_settings(config, _name)
+        _paths = resolve_sources(_settings.sources, analysis=_name)
+        RUNS[_name] = run_id(
+            [file_digest(p) for p in _paths], _settings.to_dict(), CODE
+        )
+except PanelpipeError as err:
+    sys.stderr.write(f"panelpipe: {err}\n")
+    raise SystemExit(2)
+
+OUT = config["output_dir"].rstrip("/")
+RUN_DIR = OUT + "/{analysis}/{run_id}"
+
+wildcard_constraints:
+    analysis="[a-z0-9][a-z0-9_-]*",
+    run_id="[0-9a-f]{16}",
+
+
+def all_reports():
+    return [
+        f"{OUT}/{name}/{run}/{leaf}"
+        for name, run in RUNS.items()
+        for leaf in ("report.html", "results.json", "estimates.csv", "manifest.json")
+    ]
+
+
+def analysis_settings_of(wildcards):
+    return analysis_settings(config, wildcards.analysis)
+
+
+def analysis_sources(wildcards):
+    settings = analysis_settings(config, wildcards.analysis)
+    return [ancient(str(p)) for p in resolve_sources(settings.sources, analysis=wildcards.analysis)]
+
+
+def analysis_config(wildcards):
+    return {"output_dir": OUT, "analyses": {wildcards.analysis: config["analyses"][wildcards.analysis]}}

@@ -1,0 +1,14 @@
+from panelpipe.steps import report_step, script_guard
+
+with script_guard(snakemake.log[0]):
+    report_step(
+        snakemake.params.settings,
+        snakemake.wildcards.run_id,
+        sources_in=snakemake.input.sources,
+        panel_in=snakemake.input.panel,
+        validation_in=snakemake.input.validation,
+        models_in=snakemake.input.models,
+        tests_in=snakemake.input.tests,
+        outputs=dict(snakemake.output.items()),
+        config=snakemake.params.config,
+    )

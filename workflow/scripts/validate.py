@@ -1,0 +1,9 @@
+from panelpipe.steps import script_guard, validate_step
+
+with script_guard(snakemake.log[0]):
+    validate_step(
+        snakemake.params.settings,
+        snakemake.input.panel,
+        snakemake.output.panel,
+        snakemake.output.validation,
+    )
