@@ -35,7 +35,7 @@ _BATCH_ELEMENTS = 1 << 21
 # Ties are structural, not accidental: with all weights equal to 1 the bootstrap
 # sample is the actual sample, so t* = t up to rounding and must be counted.
 _TIE_RTOL = 1e-10
-# The confidence bounds are searched out to this many standard errors.
+# The confidence bounds are searched out to this many cluster-robust half-widths.
 _MAX_WIDTH_SE = 1e8
 # Below this multiple of ||y|| the standard error is rounding noise of an exact fit.
 _EXACT_FIT_RTOL = 1e-10
@@ -114,7 +114,6 @@ class _ClusterSums:
 
     n_obs: int
     n_params: int
-    n_clusters: int
     scale: float
     theta_hat: float
     cr1: float
@@ -157,6 +156,8 @@ class _DrawMoments:
     def t_star(self, theta0: float) -> FloatArray:
         num = self.num_y - theta0 * self.num_q
         var = self.cr1 * (self.q00 - 2.0 * theta0 * self.q01 + theta0**2 * self.q11)
+        # Rounding can push a zero variance slightly below zero; 0/0 draws are never
+        # counted as at least as extreme as t.
         with np.errstate(divide="ignore", invalid="ignore"):
             return num / np.sqrt(np.maximum(var, 0.0))
 
@@ -249,7 +250,6 @@ def _cluster_sums(
     return _ClusterSums(
         n_obs=n_obs,
         n_params=n_params,
-        n_clusters=n_clusters,
         scale=float(abs(diag[-1])),
         theta_hat=float(theta[-1]),
         cr1=cr1,
@@ -318,7 +318,11 @@ def _p_value(t: float, t_star: FloatArray, kind: str) -> float:
 def _confidence_bound(
     p_of: Callable[[float], float], estimate: float, start: float, alpha: float, direction: float
 ) -> float:
-    """Where the p-value falls to ``alpha`` moving away from the estimate."""
+    """Where the p-value falls to ``alpha`` moving away from the estimate.
+
+    The p-value is a step function of the null value; ``brentq`` then narrows the
+    bracket onto the step at which it crosses ``alpha``.
+    """
     width = start
     while p_of(estimate + direction * width) >= alpha:
         width *= 2.0

@@ -15,6 +15,7 @@ import jinja2
 import matplotlib
 
 matplotlib.use("svg")
+matplotlib.rcParams["svg.hashsalt"] = "panelpipe"  # stable element ids between runs
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
@@ -111,7 +112,8 @@ _PALETTE = ["#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00"]  #
 
 def _svg(fig: Any) -> str:
     buf = io.StringIO()
-    fig.savefig(buf, format="svg", bbox_inches="tight")
+    fig.savefig(buf, format="svg", bbox_inches="tight",
+                metadata={"Creator": None, "Date": None, "Format": None, "Type": None})
     plt.close(fig)
     text = buf.getvalue()
     return text[text.index("<svg"):]

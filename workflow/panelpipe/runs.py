@@ -17,12 +17,13 @@ from pathlib import Path
 from typing import Any
 
 from . import __version__
-from .config import REPO_ROOT
+from .config import REPO_ROOT, analysis_settings, resolve_sources
 
 __all__ = [
     "atomic_write_text",
     "code_fingerprint",
     "file_digest",
+    "plan_runs",
     "run_id",
     "update_latest",
 ]
@@ -85,3 +86,14 @@ def atomic_write_text(path: Path, text: str) -> None:
 def update_latest(analysis_dir: Path, run: str) -> None:
     """Point ``<analysis_dir>/latest`` at a completed run (a file holding its id)."""
     atomic_write_text(Path(analysis_dir) / "latest", run + "\n")
+
+
+def plan_runs(config: Mapping[str, Any]) -> dict[str, str]:
+    """The run id of every analysis of a validated configuration."""
+    code = code_fingerprint()
+    planned = {}
+    for name in config["analyses"]:
+        settings = analysis_settings(config, name)
+        paths = resolve_sources(settings.sources, analysis=name)
+        planned[name] = run_id([file_digest(p) for p in paths], settings.to_dict(), code)
+    return planned

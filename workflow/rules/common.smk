@@ -1,27 +1,20 @@
 # Configuration checks, run ids and input functions shared by every rule.
 import sys
 
-from panelpipe.config import validate_config
+from panelpipe.config import analysis_settings, resolve_sources, validate_config
 from panelpipe.findings import PanelpipeError
-from panelpipe.runs import code_fingerprint, file_digest, run_id
-from panelpipe.config import analysis_settings, resolve_sources
+from panelpipe.runs import plan_runs
 
 try:
     config = validate_config(config, origin="configuration")
-    CODE = code_fingerprint()
-    RUNS = {}
-    for _name in config["analyses"]:
-        _settings = analysis_settings(config, _name)
-        _paths = resolve_sources(_settings.sources, analysis=_name)
-        RUNS[_name] = run_id(
-            [file_digest(p) for p in _paths], _settings.to_dict(), CODE
-        )
+    RUNS = plan_runs(config)
 except PanelpipeError as err:
     sys.stderr.write(f"panelpipe: {err}\n")
     raise SystemExit(2)
 
 OUT = config["output_dir"].rstrip("/")
 RUN_DIR = OUT + "/{analysis}/{run_id}"
+
 
 wildcard_constraints:
     analysis="[a-z0-9][a-z0-9_-]*",
@@ -42,8 +35,12 @@ def analysis_settings_of(wildcards):
 
 def analysis_sources(wildcards):
     settings = analysis_settings(config, wildcards.analysis)
-    return [ancient(str(p)) for p in resolve_sources(settings.sources, analysis=wildcards.analysis)]
+    paths = resolve_sources(settings.sources, analysis=wildcards.analysis)
+    return [ancient(str(p)) for p in paths]
 
 
 def analysis_config(wildcards):
-    return {"output_dir": OUT, "analyses": {wildcards.analysis: config["analyses"][wildcards.analysis]}}
+    return {
+        "output_dir": OUT,
+        "analyses": {wildcards.analysis: config["analyses"][wildcards.analysis]},
+    }

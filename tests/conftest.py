@@ -1,0 +1,62 @@
+"""Shared fixtures: a small seeded, unbalanced simulated panel.
+
+The generator is written here, independent of ``panelpipe.demo``, so that the
+reference tests do not depend on the package's own simulation code.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numpy as np
+import pandas as pd
+import pytest
+
+FIRST_PERIOD = 2001
+
+
+def simulate_panel(
+    n_units: int = 30, n_periods: int = 8, seed: int = 20240601, n_missing: int = 6
+) -> pd.DataFrame:
+    """A seeded unbalanced panel shaped like the output of ``ingest.read_panel``.
+
+    Columns: ``unit`` (text such as ``"u07"``), ``period`` (integer year from
+    2001), outcome ``y``, time-varying regressors ``x1`` (correlated with the unit
+    effect, so fixed and random effects differ) and ``x2``, a time-invariant ``z``,
+    and the bookkeeping columns ``_source`` and ``_line``. Errors are
+    heteroskedastic so that classical and clustered standard errors differ.
+    ``n_missing`` rows are removed, one from each of ``n_missing`` distinct units
+    at a random period, so some units have a gap inside their span.
+    """
+    rng = np.random.default_rng(seed)
+    unit = np.repeat(np.arange(n_units), n_periods)
+    t = np.tile(np.arange(n_periods), n_units)
+    unit_effect = rng.normal(size=n_units)[unit]
+    period_effect = rng.normal(scale=0.5, size=n_periods)[t]
+    z = rng.normal(size=n_units)[unit]
+    x1 = 0.8 * unit_effect + 0.1 * t + rng.normal(size=unit.size)
+    x2 = 0.5 * z + rng.normal(size=unit.size)
+    noise = rng.normal(size=unit.size) * (1.0 + 0.5 * np.abs(x2))
+    y = unit_effect + period_effect + 1.5 * x1 - 0.7 * x2 + 0.3 * z + noise
+    frame = pd.DataFrame({
+        "unit": [f"u{u:02d}" for u in unit],
+        "period": FIRST_PERIOD + t,
+        "y": y,
+        "x1": x1,
+        "x2": x2,
+        "z": z,
+    })
+    gone_units = rng.choice(n_units, size=n_missing, replace=False)
+    gone_periods = rng.integers(0, n_periods, size=n_missing)
+    gone = gone_units * n_periods + gone_periods
+    frame = frame.drop(index=gone).reset_index(drop=True)
+    frame["unit"] = frame["unit"].astype("string")
+    frame["_source"] = "simulated.csv"
+    frame["_line"] = np.arange(2, len(frame) + 2)  # CSV line numbers, header = line 1
+    return frame
+
+
+@pytest.fixture(scope="session")
+def make_panel() -> Callable[..., pd.DataFrame]:
+    """Factory fixture: ``make_panel(n_units=30, n_periods=8, seed=..., n_missing=6)``."""
+    return simulate_panel

@@ -1,0 +1,182 @@
+"""The ``panelpipe`` command: run, inspect, init, compare.
+
+``run`` calls the Snakemake command line in a subprocess (its Python API is
+thinly documented and changes between releases) and passes extra arguments
+through unchanged.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+
+import yaml
+
+from .config import REPO_ROOT, load_config, validate_config
+from .findings import PanelpipeError
+from .changes import compare_runs, render_changes
+from .runs import plan_runs
+from .survey import inspect_file, render_profile
+
+__all__ = ["main"]
+
+
+def _default_config() -> tuple[Path, Path]:
+    """The config file and the directory to run in when none is given."""
+    local = Path.cwd() / "config" / "config.yaml"
+    if local.is_file():
+        return local, Path.cwd()
+    return REPO_ROOT / "config" / "config.yaml", REPO_ROOT
+
+
+def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
+    if args.config:
+        config_path, workdir = Path(args.config).resolve(), Path.cwd()
+    else:
+        config_path, workdir = _default_config()
+    here = os.getcwd()
+    os.chdir(workdir)  # relative paths in the config resolve against the run directory
+    try:
+        config = load_config(config_path)
+        planned = plan_runs(config)
+    finally:
+        os.chdir(here)
+    cmd = [
+        sys.executable, "-m", "snakemake",
+        "--snakefile", str(REPO_ROOT / "Snakefile"),
+        "--directory", str(workdir),
+        "--configfile", str(config_path),
+        "--cores", str(args.cores),
+        "--keep-going",
+        "--rerun-incomplete",
+    ]
+    if args.dry_run:
+        cmd.append("--dry-run")
+    cmd.extend(extra)
+    code = subprocess.call(cmd)
+    out = Path(config["output_dir"])
+    out = out if out.is_absolute() else workdir / out
+    for name, run in planned.items():
+        folder = out / name / run
+        done = (folder / "report.html").is_file()
+        status = "ok" if done else ("planned" if args.dry_run else "failed")
+        print(json.dumps({"analysis": name, "status": status, "run_id": run,
+                          "report": str(folder / "report.html") if done else None}))
+    if code != 0:
+        sys.stderr.write(
+            f"panelpipe: the workflow failed (Snakemake exit status {code}); the messages "
+            "above name the analysis and the file at fault, and each run folder keeps its "
+            "logs/ folder.\n"
+        )
+    return code
+
+
+def _inspect(args: argparse.Namespace) -> int:
+    profile = inspect_file(Path(args.file), unit=args.unit, period=args.period)
+    print(json.dumps(profile, indent=2, default=str) if args.json else render_profile(profile))
+    return 0
+
+
+def _init(args: argparse.Namespace) -> int:
+    path = Path(args.file)
+    profile = inspect_file(path, unit=args.unit, period=args.period)
+    columns = [c["name"] for c in profile["columns"]]
+    if args.regressors:
+        regressors = [r.strip() for r in args.regressors.split(",") if r.strip()]
+    else:
+        numeric = [c["name"] for c in profile["columns"] if c["numeric"]]
+        regressors = [c for c in numeric if c not in {args.unit, args.period, args.outcome}]
+    for col in [args.unit, args.period, args.outcome, *regressors]:
+        if col not in columns:
+            raise PanelpipeError(f"{path}: column {col!r} not found; the file has "
+                                 f"{', '.join(map(repr, columns))}.")
+    name = "".join(ch if ch.isalnum() else "_" for ch in path.stem.lower()).strip("_") or "panel"
+    if not name[0].isalnum():
+        name = "panel_" + name
+    config = {
+        "output_dir": "reports",
+        "analyses": {name: {
+            "sources": [str(path)], "unit": args.unit, "period": args.period,
+            "outcome": args.outcome, "regressors": regressors, "period_effects": True,
+            "cluster_by": [args.unit],
+            "estimators": ["pooled_ols", "fixed_effects", "random_effects"],
+            "inference": ["classical", "robust", "cluster"],
+        }},
+    }
+    validate_config(config, origin="generated configuration")
+    text = ("# Written by `panelpipe init`; see config/README.md for every key.\n"
+            + yaml.safe_dump(config, sort_keys=False, allow_unicode=True))
+    if args.output:
+        out = Path(args.output)
+        if out.exists():
+            raise PanelpipeError(f"{out} already exists; choose another --output or remove it.")
+        out.write_text(text, encoding="utf-8")
+        print(f"wrote {out}")
+    else:
+        sys.stdout.write(text)
+    return 0
+
+
+def _compare(args: argparse.Namespace) -> int:
+    changes = compare_runs(Path(args.run_a), Path(args.run_b))
+    print(json.dumps(changes, indent=2, default=str) if args.json else render_changes(changes))
+    return 0
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="panelpipe",
+        description="Validate, estimate, compare and audit panel regressions; one report per run.",
+    )
+    sub = parser.add_subparsers(dest="command", required=True)
+    run = sub.add_parser("run", help="run every analysis of a config through the workflow",
+                         description="Extra arguments after -- go to Snakemake unchanged.")
+    run.add_argument("--config", help="configuration file (default: config/config.yaml)")
+    run.add_argument("--cores", type=int, default=2, help="cores Snakemake may use (default 2)")
+    run.add_argument("--dry-run", action="store_true", help="show what would run, run nothing")
+    ins = sub.add_parser("inspect", help="profile a CSV or Parquet file as a panel")
+    ins.add_argument("file")
+    ins.add_argument("--unit")
+    ins.add_argument("--period")
+    ins.add_argument("--json", action="store_true", help="print the profile as JSON")
+    ini = sub.add_parser("init", help="write a starting config for a file")
+    ini.add_argument("file")
+    ini.add_argument("--unit", required=True)
+    ini.add_argument("--period", required=True)
+    ini.add_argument("--outcome", required=True)
+    ini.add_argument("--regressors", help="comma-separated columns (default: every other numeric)")
+    ini.add_argument("--output", "-o", help="write here instead of standard output")
+    cmp = sub.add_parser("compare", help="what changed between two runs")
+    cmp.add_argument("run_a")
+    cmp.add_argument("run_b")
+    cmp.add_argument("--json", action="store_true", help="print the changes as JSON")
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    argv = list(sys.argv[1:] if argv is None else argv)
+    extra: list[str] = []
+    if "--" in argv:
+        cut = argv.index("--")
+        argv, extra = argv[:cut], argv[cut + 1:]
+    args = _parser().parse_args(argv)
+    try:
+        if args.command == "run":
+            return _run(args, extra)
+        if args.command == "inspect":
+            return _inspect(args)
+        if args.command == "init":
+            return _init(args)
+        return _compare(args)
+    except PanelpipeError as err:
+        sys.stderr.write(f"panelpipe: {err}\n")
+        return 2
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
