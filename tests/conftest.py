@@ -38,14 +38,16 @@ def simulate_panel(
     x2 = 0.5 * z + rng.normal(size=unit.size)
     noise = rng.normal(size=unit.size) * (1.0 + 0.5 * np.abs(x2))
     y = unit_effect + period_effect + 1.5 * x1 - 0.7 * x2 + 0.3 * z + noise
-    frame = pd.DataFrame({
-        "unit": [f"u{u:02d}" for u in unit],
-        "period": FIRST_PERIOD + t,
-        "y": y,
-        "x1": x1,
-        "x2": x2,
-        "z": z,
-    })
+    frame = pd.DataFrame(
+        {
+            "unit": [f"u{u:02d}" for u in unit],
+            "period": FIRST_PERIOD + t,
+            "y": y,
+            "x1": x1,
+            "x2": x2,
+            "z": z,
+        }
+    )
     gone_units = rng.choice(n_units, size=n_missing, replace=False)
     gone_periods = rng.integers(0, n_periods, size=n_missing)
     gone = gone_units * n_periods + gone_periods

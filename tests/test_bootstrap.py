@@ -14,6 +14,8 @@ from collections.abc import Sequence
 import numpy as np
 import pytest
 import statsmodels.api as sm
+from scipy import stats
+
 from panelpipe.bootstrap import (
     WEBB_WEIGHTS,
     BootstrapResult,
@@ -23,7 +25,6 @@ from panelpipe.bootstrap import (
     _weight_batches,
     wild_cluster_bootstrap,
 )
-from scipy import stats
 
 UNEQUAL_SIZES = (2, 3, 5, 10, 20, 50, 100, 200)
 

@@ -37,9 +37,17 @@ def test_demo_config_is_valid_and_defaults_fill_in() -> None:
     ("path", "value", "match"),
     [
         (["analyses", "regional_jobs", "colour"], "red", r"regional_jobs: Additional properties"),
-        (["analyses", "regional_jobs", "period_effects"], "yes", r"period_effects: 'yes' is not of"),
+        (
+            ["analyses", "regional_jobs", "period_effects"],
+            "yes",
+            r"period_effects: 'yes' is not of",
+        ),
         (["analyses", "regional_jobs", "estimators"], [], r"estimators: \[\] should be non-empty"),
-        (["analyses", "regional_jobs", "estimators"], ["within_ols"], r"'within_ols' is not one of"),
+        (
+            ["analyses", "regional_jobs", "estimators"],
+            ["within_ols"],
+            r"'within_ols' is not one of",
+        ),
         (["analyses", "regional_jobs", "regressors"], ["a", "a"], r"regressors: .*non-unique"),
         (["analyses", "regional_jobs", "level"], 1.5, r"level: 1.5 is greater than or equal"),
         (["output_dir"], 3, r"output_dir: 3 is not of type 'string'"),
@@ -72,8 +80,10 @@ def test_missing_source_and_empty_glob(tmp_path: Path, monkeypatch: pytest.Monke
         resolve_sources(["deliveries/*.csv"], analysis="a")
     (tmp_path / "b_2021.csv").write_text("x\n")
     (tmp_path / "a_2020.csv").write_text("x\n")
-    assert [p.name for p in resolve_sources(["*.csv"], analysis="a")] == ["a_2020.csv",
-                                                                          "b_2021.csv"]
+    assert [p.name for p in resolve_sources(["*.csv"], analysis="a")] == [
+        "a_2020.csv",
+        "b_2021.csv",
+    ]
     (tmp_path / "notes.xlsx").write_text("x")
     with pytest.raises(PanelpipeError, match=r"neither CSV nor Parquet"):
         resolve_sources(["notes.xlsx"], analysis="a")

@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from linearmodels.panel import PanelOLS
+
 from panelpipe.demo import (
     COLUMNS,
     N_MISSING_ROWS,

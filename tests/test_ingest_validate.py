@@ -17,10 +17,18 @@ HEADER = "region,year,jobs,grant,coastal\n"
 
 def settings(**over: object) -> AnalysisSettings:
     base: dict = dict(
-        name="t", sources=(), unit="region", period="year", outcome="jobs",
-        regressors=("grant", "coastal"), period_effects=True, cluster_by=("region",),
+        name="t",
+        sources=(),
+        unit="region",
+        period="year",
+        outcome="jobs",
+        regressors=("grant", "coastal"),
+        period_effects=True,
+        cluster_by=("region",),
         estimators=("pooled_ols", "fixed_effects", "random_effects"),
-        inference=("classical", "cluster"), level=0.95, gates={},
+        inference=("classical", "cluster"),
+        level=0.95,
+        gates={},
     )
     base.update(over)
     return AnalysisSettings(**base)
@@ -29,7 +37,8 @@ def settings(**over: object) -> AnalysisSettings:
 def good_rows(units: int = 4, years: range = range(2020, 2024)) -> str:
     return "".join(
         f"{u:03d},{y},{10 + u + y % 7},{(u * 3 + y) % 5 + 0.5},{u % 2}\n"
-        for u in range(1, units + 1) for y in years
+        for u in range(1, units + 1)
+        for y in years
     )
 
 
@@ -83,8 +92,11 @@ def test_parquet_source(tmp_path: Path) -> None:
 def test_missing_column_names_file_and_columns(tmp_path: Path) -> None:
     p = tmp_path / "renamed.csv"
     p.write_text("region,year,jobs,grant_rate,coastal\n001,2020,1,2,0\n")
-    with pytest.raises(PanelpipeError, match=r"renamed.csv: column\(s\) 'grant' not found; "
-                                             r"the file has 'region', 'year'"):
+    with pytest.raises(
+        PanelpipeError,
+        match=r"renamed.csv: column\(s\) 'grant' not found; "
+        r"the file has 'region', 'year'",
+    ):
         read_panel([p], settings().columns, unit="region")
 
 
@@ -100,7 +112,8 @@ def test_same_key_in_two_deliveries_is_a_duplicate(tmp_path: Path) -> None:
     result = load(tmp_path, HEADER + good_rows(), HEADER + "001,2023,99,1.5,1\n")
     assert "duplicate_keys" in codes(result, "error")
     assert "delivery_1.csv line 2" in next(
-        f.message for f in result.findings if f.code == "duplicate_keys")
+        f.message for f in result.findings if f.code == "duplicate_keys"
+    )
 
 
 def test_non_numeric_value_lists_rows(tmp_path: Path) -> None:

@@ -38,8 +38,11 @@ ESTIMATORS = ("pooled_ols", "fixed_effects", "random_effects", "first_difference
 TOL = 1e-8
 
 
-def _settings(period_effects: bool, regressors: tuple[str, ...] = REGRESSORS,
-              estimators: tuple[str, ...] = ESTIMATORS) -> AnalysisSettings:
+def _settings(
+    period_effects: bool,
+    regressors: tuple[str, ...] = REGRESSORS,
+    estimators: tuple[str, ...] = ESTIMATORS,
+) -> AnalysisSettings:
     return AnalysisSettings(
         name="simulated",
         sources=("simulated.csv",),
@@ -89,16 +92,18 @@ def fitted(request: pytest.FixtureRequest, raw: pd.DataFrame) -> Fitted:
     return Fitted(raw, request.param)
 
 
-def _cr1_se(ols: sm.regression.linear_model.RegressionResultsWrapper, groups: np.ndarray,
-            n_obs: int, k: int) -> pd.Series:
+def _cr1_se(
+    ols: sm.regression.linear_model.RegressionResultsWrapper, groups: np.ndarray, n_obs: int, k: int
+) -> pd.Series:
     """statsmodels' raw cluster sandwich (no correction) times G/(G-1)·(N-1)/(N-K).
 
     ``use_correction=False`` makes statsmodels return (X'X)^-1 (sum_g X_g'u_g u_g'X_g)
     (X'X)^-1 with no small-sample factor; the CR1 factor (Cameron & Miller 2015) is
     applied here with the K that panelpipe states.
     """
-    raw_fit = ols.model.fit(cov_type="cluster",
-                            cov_kwds={"groups": groups, "use_correction": False})
+    raw_fit = ols.model.fit(
+        cov_type="cluster", cov_kwds={"groups": groups, "use_correction": False}
+    )
     g = len(np.unique(groups))
     factor = g / (g - 1) * (n_obs - 1) / (n_obs - k)
     return pd.Series(np.sqrt(np.diag(raw_fit.cov_params()) * factor), index=ols.params.index)
@@ -110,6 +115,7 @@ def _codes(labels: pd.Series) -> np.ndarray:
 
 # ------------------------------------------------------------------ the sample
 
+
 def test_simulated_panel_is_unbalanced_with_gaps(raw: pd.DataFrame) -> None:
     assert len(raw) == 30 * 8 - 6
     span = raw.groupby("unit")["period"].agg(lambda p: p.max() - p.min() + 1)
@@ -119,6 +125,7 @@ def test_simulated_panel_is_unbalanced_with_gaps(raw: pd.DataFrame) -> None:
 
 
 # ----------------------------------------------------------------- fixed effects
+
 
 def _dummy_ols(fit: Fitted) -> sm.regression.linear_model.RegressionResultsWrapper:
     """OLS of y on the slopes, a dummy per unit and the period dummies."""
@@ -162,6 +169,7 @@ def test_fixed_effects_cluster_se_is_raw_sandwich_times_stated_cr1(fitted: Fitte
 
 # ------------------------------------------------------------------- pooled OLS
 
+
 def test_pooled_ols_matches_statsmodels(fitted: Fitted) -> None:
     pooled = fitted.models["pooled_ols"]
     p = fitted.panel
@@ -170,15 +178,18 @@ def test_pooled_ols_matches_statsmodels(fitted: Fitted) -> None:
     names = ["const", *REGRESSORS, *fitted.period_dummies().columns]
     ours = pooled.params.to_numpy()
     np.testing.assert_allclose(ours, ols.params[names], rtol=TOL, atol=TOL)
-    np.testing.assert_allclose(pooled.inference["classical"].std_errors.to_numpy(),
-                               ols.bse[names], rtol=TOL)
+    np.testing.assert_allclose(
+        pooled.inference["classical"].std_errors.to_numpy(), ols.bse[names], rtol=TOL
+    )
     # Pooled OLS: no effects are absorbed, so K counts every coefficient.
     expected = _cr1_se(ols, _codes(p["unit"]), len(p), len(names))
-    np.testing.assert_allclose(pooled.inference["cluster"].std_errors.to_numpy(),
-                               expected[names], rtol=TOL)
+    np.testing.assert_allclose(
+        pooled.inference["cluster"].std_errors.to_numpy(), expected[names], rtol=TOL
+    )
 
 
 # ----------------------------------------------------------- first differences
+
 
 def _consecutive_differences(panel: pd.DataFrame) -> pd.DataFrame:
     """Differences of each unit's row and its row one period earlier.
@@ -188,8 +199,9 @@ def _consecutive_differences(panel: pd.DataFrame) -> pd.DataFrame:
     formed; it is dropped here as well.
     """
     p = panel.sort_values(["unit", "period"])
-    rank = pd.Series(pd.factorize(np.sort(p["period"].unique()))[0],
-                     index=np.sort(p["period"].unique()))
+    rank = pd.Series(
+        pd.factorize(np.sort(p["period"].unique()))[0], index=np.sort(p["period"].unique())
+    )
     step = p["period"].map(rank).diff()
     same_unit = p["unit"].eq(p["unit"].shift())
     keep = same_unit & step.eq(1)
@@ -213,18 +225,23 @@ def test_first_difference_one_way_matches_statsmodels(raw: pd.DataFrame) -> None
     diffs = _consecutive_differences(fit.panel)
     ols = sm.OLS(diffs["y"], diffs[SLOPES]).fit()  # no constant: no trend in levels
     np.testing.assert_allclose(fd.params[SLOPES], ols.params[SLOPES], rtol=TOL)
-    np.testing.assert_allclose(fd.inference["classical"].std_errors[SLOPES], ols.bse[SLOPES],
-                               rtol=TOL)
+    np.testing.assert_allclose(
+        fd.inference["classical"].std_errors[SLOPES], ols.bse[SLOPES], rtol=TOL
+    )
     expected = _cr1_se(ols, _codes(diffs["unit"]), len(diffs), len(SLOPES))
-    np.testing.assert_allclose(fd.inference["cluster"].std_errors[SLOPES], expected[SLOPES],
-                               rtol=TOL)
+    np.testing.assert_allclose(
+        fd.inference["cluster"].std_errors[SLOPES], expected[SLOPES], rtol=TOL
+    )
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "estimate.py line 325: FirstDifferenceOLS gets dummies.iloc[:, 1:], dropping the "
-    "second period's dummy on top of the first (already dropped by drop_first); this "
-    "forces the second period's effect to equal the first's instead of estimating it"
-))
+@pytest.mark.xfail(
+    strict=True,
+    reason=(
+        "estimate.py _model (first_difference): FirstDifferenceOLS gets "
+        "dummies.iloc[:, 1:], dropping the second period's dummy on top of the first (already dropped by drop_first); this "
+        "forces the second period's effect to equal the first's instead of estimating it"
+    ),
+)
 def test_first_difference_two_way_matches_statsmodels(raw: pd.DataFrame) -> None:
     fit = Fitted(raw, period_effects=True)
     fd = fit.models["first_difference"]
@@ -236,15 +253,19 @@ def test_first_difference_two_way_matches_statsmodels(raw: pd.DataFrame) -> None
     intercepts = pd.get_dummies(diffs["period"], prefix="d", dtype=float)
     ols = sm.OLS(diffs["y"], pd.concat([diffs[SLOPES], intercepts], axis=1)).fit()
     np.testing.assert_allclose(fd.params[SLOPES], ols.params[SLOPES], rtol=TOL)
-    np.testing.assert_allclose(fd.inference["classical"].std_errors[SLOPES], ols.bse[SLOPES],
-                               rtol=TOL)
+    np.testing.assert_allclose(
+        fd.inference["classical"].std_errors[SLOPES], ols.bse[SLOPES], rtol=TOL
+    )
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "estimate.py lines 219-224 (_transformed, first_difference) difference rows across "
-    "gaps, but linearmodels' FirstDifferenceOLS does not; a regressor that changes only "
-    "across a gap is kept and the fit fails with numpy LinAlgError 'Singular matrix'"
-))
+@pytest.mark.xfail(
+    strict=True,
+    reason=(
+        "estimate.py _transformed (first_difference branch) differences rows across "
+        "gaps, but linearmodels' FirstDifferenceOLS does not; a regressor that changes only "
+        "across a gap is kept and the fit fails with numpy LinAlgError 'Singular matrix'"
+    ),
+)
 def test_first_difference_leaves_out_regressor_changing_only_across_gaps(
     raw: pd.DataFrame,
 ) -> None:
@@ -261,21 +282,27 @@ def test_first_difference_leaves_out_regressor_changing_only_across_gaps(
 
 # ----------------------------------------------------------------------- between
 
+
 def test_between_matches_ols_on_unit_means(raw: pd.DataFrame) -> None:
     fit = Fitted(raw, period_effects=False)
     between = fit.models["between"]
     means = fit.panel.groupby("unit")[["y", *REGRESSORS]].mean()
     ols = sm.OLS(means["y"], sm.add_constant(means[list(REGRESSORS)])).fit()
     np.testing.assert_allclose(between.params.to_numpy(), ols.params.to_numpy(), rtol=TOL)
-    np.testing.assert_allclose(between.inference["classical"].std_errors.to_numpy(),
-                               ols.bse.to_numpy(), rtol=TOL)
+    np.testing.assert_allclose(
+        between.inference["classical"].std_errors.to_numpy(), ols.bse.to_numpy(), rtol=TOL
+    )
 
 
 # ------------------------------------------------- time-invariant regressor z
 
+
 def _not_identified(findings: list[Finding], estimator: str) -> set[str]:
-    return {f.where["column"] for f in findings
-            if f.code == "regressor_not_identified" and f.where["estimator"] == estimator}
+    return {
+        f.where["column"]
+        for f in findings
+        if f.code == "regressor_not_identified" and f.where["estimator"] == estimator
+    }
 
 
 def test_time_invariant_regressor_left_out_of_within_estimators(fitted: Fitted) -> None:
@@ -295,11 +322,14 @@ def test_time_invariant_regressor_left_out_of_within_estimators(fitted: Fitted) 
 
 # ------------------------------------------------------------------------ Hausman
 
+
 def _hausman_parts(fe: ModelResult, re: ModelResult) -> tuple[np.ndarray, np.ndarray]:
     """The slope difference d and covariance difference V_FE - V_RE (classical)."""
     d = (fe.params[SLOPES] - re.params[SLOPES]).to_numpy()
-    v = (fe.inference["classical"].cov.loc[SLOPES, SLOPES].to_numpy()
-         - re.inference["classical"].cov.loc[SLOPES, SLOPES].to_numpy())
+    v = (
+        fe.inference["classical"].cov.loc[SLOPES, SLOPES].to_numpy()
+        - re.inference["classical"].cov.loc[SLOPES, SLOPES].to_numpy()
+    )
     return d, v
 
 
@@ -307,8 +337,9 @@ def _hausman_parts(fe: ModelResult, re: ModelResult) -> tuple[np.ndarray, np.nda
 def test_hausman_matches_hand_computation(raw: pd.DataFrame, period_effects: bool) -> None:
     # Without z the covariance difference is positive definite on this sample, so
     # H = d'(V_FE - V_RE)^-1 d ~ chi2(2) (Hausman 1978), computed here with numpy.
-    settings = _settings(period_effects, regressors=tuple(SLOPES),
-                         estimators=("fixed_effects", "random_effects"))
+    settings = _settings(
+        period_effects, regressors=tuple(SLOPES), estimators=("fixed_effects", "random_effects")
+    )
     design, _ = make_design(validate_panel(raw, settings).panel, settings)
     models, _ = estimate_all(design)
     fe, re = models["fixed_effects"], models["random_effects"]
@@ -325,12 +356,15 @@ def test_hausman_matches_hand_computation(raw: pd.DataFrame, period_effects: boo
     assert test.p_value < 0.01
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "compare.py lines 76-85: when V_FE - V_RE is indefinite, the statistic uses "
-    "np.linalg.pinv(v), which also inverts the negative eigenvalue (here it adds -1.33), "
-    "while df counts only the positive eigenvalues (1, not the rank 2); statistic and df "
-    "describe different quadratic forms"
-))
+@pytest.mark.xfail(
+    strict=True,
+    reason=(
+        "compare.py hausman: when V_FE - V_RE is indefinite, the statistic uses "
+        "np.linalg.pinv(v), which also inverts the negative eigenvalue (here it adds -1.33), "
+        "while df counts only the positive eigenvalues (1, not the rank 2); statistic and df "
+        "describe different quadratic forms"
+    ),
+)
 def test_hausman_with_indefinite_covariance_difference_is_consistent(fitted: Fitted) -> None:
     # With z in the model (kept by random effects, absorbed by fixed effects) the
     # covariance difference of x1, x2 has one negative eigenvalue on this sample.
@@ -346,10 +380,13 @@ def test_hausman_with_indefinite_covariance_difference_is_consistent(fitted: Fit
     # (a) the positive part of V: sum over positive eigenvalues of (q'd)^2/lambda,
     #     df = their number; (b) the Moore-Penrose inverse of V, df = rank(V).
     positive = eig > 0
-    part_a = (float(np.sum((vectors[:, positive].T @ d) ** 2 / eig[positive])),
-              int(positive.sum()))
-    part_b = (float(d @ np.linalg.pinv(v, hermitian=True) @ d),
-              int(np.linalg.matrix_rank(v, hermitian=True)))
-    assert any(test.statistic == pytest.approx(stat, rel=1e-8) and test.df == df
-               for stat, df in (part_a, part_b))
+    part_a = (float(np.sum((vectors[:, positive].T @ d) ** 2 / eig[positive])), int(positive.sum()))
+    part_b = (
+        float(d @ np.linalg.pinv(v, hermitian=True) @ d),
+        int(np.linalg.matrix_rank(v, hermitian=True)),
+    )
+    assert any(
+        test.statistic == pytest.approx(stat, rel=1e-8) and test.df == df
+        for stat, df in (part_a, part_b)
+    )
     assert test.p_value == pytest.approx(stats.chi2.sf(test.statistic, test.df), rel=1e-8)

@@ -100,6 +100,7 @@ def models(data: pd.DataFrame) -> dict[str, ModelResult]:
 
 # ------------------------------------------------------- independent computations
 
+
 @pytest.fixture(scope="module")
 def fits(data: pd.DataFrame) -> dict[str, Any]:
     """The four estimators fitted with statsmodels OLS on data transformed here."""
@@ -137,6 +138,7 @@ def fits(data: pd.DataFrame) -> dict[str, Any]:
 
 
 # ------------------------------------------------------------------- the tests
+
 
 @pytest.mark.parametrize("estimator", list(PUBLISHED))
 @pytest.mark.parametrize("slope", SLOPES)
@@ -213,7 +215,7 @@ def test_hausman_matches_statsmodels_route(
     """Hausman (1978) from the statsmodels fits only: firm dummies vs quasi-demeaned OLS."""
     within, gls = fits["fixed_effects"], fits["random_effects"]
     diff = (within.params[SLOPES] - gls.params[SLOPES]).to_numpy()
-    v = (within.cov_params().loc[SLOPES, SLOPES] - gls.cov_params().loc[SLOPES, SLOPES])
+    v = within.cov_params().loc[SLOPES, SLOPES] - gls.cov_params().loc[SLOPES, SLOPES]
     expected = float(diff @ np.linalg.solve(v.to_numpy(), diff))
     test = hausman(models["fixed_effects"], models["random_effects"])
     assert test.statistic == pytest.approx(expected, rel=1e-7)

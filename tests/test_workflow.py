@@ -24,8 +24,13 @@ DEMO = REPO_ROOT / "config" / "demo"
 
 
 def run(cwd: Path, *args: str) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "panelpipe", *args], cwd=cwd, text=True,
-                          capture_output=True, timeout=600)
+    return subprocess.run(
+        [sys.executable, "-m", "panelpipe", *args],
+        cwd=cwd,
+        text=True,
+        capture_output=True,
+        timeout=600,
+    )
 
 
 def write_config(cwd: Path, analyses: dict) -> Path:
@@ -37,7 +42,9 @@ def write_config(cwd: Path, analyses: dict) -> Path:
 def demo_analysis(**over: object) -> dict:
     base = {
         "sources": ["data/regional_jobs_2011_2024.csv", "data/regional_jobs_2025.csv"],
-        "unit": "region", "period": "year", "outcome": "youth_employment",
+        "unit": "region",
+        "period": "year",
+        "outcome": "youth_employment",
         "regressors": ["subsidy_rate", "broadband_share", "coastal"],
         "estimators": ["pooled_ols", "fixed_effects", "random_effects"],
         "inference": ["classical", "cluster"],
@@ -75,8 +82,16 @@ def test_demo_runs_end_to_end_and_a_rerun_does_no_work(workdir: Path) -> None:
     assert any(f["code"] == "regressor_not_identified" for f in results["validation"]["findings"])
 
     table = pd.read_csv(run_dir / "estimates.csv")
-    assert list(table.columns) == ["model", "term", "inference", "estimate", "std_error",
-                                   "ci_low", "ci_high", "p_value"]
+    assert list(table.columns) == [
+        "model",
+        "term",
+        "inference",
+        "estimate",
+        "std_error",
+        "ci_low",
+        "ci_high",
+        "p_value",
+    ]
     manifest = json.loads((run_dir / "manifest.json").read_text())
     assert len(manifest["inputs"]) == 2 and len(manifest["inputs"][0]["sha256"]) == 64
 
@@ -95,22 +110,32 @@ def test_demo_runs_end_to_end_and_a_rerun_does_no_work(workdir: Path) -> None:
 
 
 def test_new_delivery_makes_a_new_run_and_keeps_the_old(workdir: Path) -> None:
-    cfg = write_config(workdir, {"jobs": demo_analysis(sources=["data/regional_jobs_2011_2024.csv"],
-                                                        estimators=["fixed_effects"],
-                                                        inference=["cluster"])})
+    cfg = write_config(
+        workdir,
+        {
+            "jobs": demo_analysis(
+                sources=["data/regional_jobs_2011_2024.csv"],
+                estimators=["fixed_effects"],
+                inference=["cluster"],
+            )
+        },
+    )
     first = run(workdir, "run", "--config", str(cfg))
     assert first.returncode == 0, first.stderr[-3000:]
     old = json.loads(first.stdout.strip().splitlines()[-1])["run_id"]
-    old_bytes = {p: p.read_bytes() for p in (workdir / "out" / "jobs" / old).rglob("*")
-                 if p.is_file()}
-    cfg = write_config(workdir, {"jobs": demo_analysis(estimators=["fixed_effects"],
-                                                        inference=["cluster"])})
+    old_bytes = {
+        p: p.read_bytes() for p in (workdir / "out" / "jobs" / old).rglob("*") if p.is_file()
+    }
+    cfg = write_config(
+        workdir, {"jobs": demo_analysis(estimators=["fixed_effects"], inference=["cluster"])}
+    )
     second = run(workdir, "run", "--config", str(cfg))
     assert second.returncode == 0, second.stderr[-3000:]
     new = json.loads(second.stdout.strip().splitlines()[-1])["run_id"]
     assert new != old
-    assert old_bytes == {p: p.read_bytes() for p in (workdir / "out" / "jobs" / old).rglob("*")
-                         if p.is_file()}
+    assert old_bytes == {
+        p: p.read_bytes() for p in (workdir / "out" / "jobs" / old).rglob("*") if p.is_file()
+    }
     assert (workdir / "out" / "jobs" / "latest").read_text().strip() == new
     compared = run(workdir, "compare", f"out/jobs/{old}", f"out/jobs/{new}")
     assert compared.returncode == 0, compared.stderr
@@ -147,9 +172,17 @@ def test_hostile_column_name_is_escaped_in_the_report(workdir: Path) -> None:
     frame = pd.read_csv(workdir / "data" / "regional_jobs_2011_2024.csv", dtype={"region": str})
     frame = frame.rename(columns={"broadband_share": hostile})
     frame.to_parquet(workdir / "data" / "hostile.parquet")
-    cfg = write_config(workdir, {"hostile": demo_analysis(
-        sources=["data/hostile.parquet"], regressors=["subsidy_rate", hostile],
-        estimators=["fixed_effects"], inference=["cluster"])})
+    cfg = write_config(
+        workdir,
+        {
+            "hostile": demo_analysis(
+                sources=["data/hostile.parquet"],
+                regressors=["subsidy_rate", hostile],
+                estimators=["fixed_effects"],
+                inference=["cluster"],
+            )
+        },
+    )
     result = run(workdir, "run", "--config", str(cfg))
     assert result.returncode == 0, result.stderr[-3000:]
     run_id = json.loads(result.stdout.strip().splitlines()[-1])["run_id"]
@@ -159,6 +192,11 @@ def test_hostile_column_name_is_escaped_in_the_report(workdir: Path) -> None:
 
 
 def test_plain_snakemake_from_the_repository_root_dry_run() -> None:
-    result = subprocess.run([sys.executable, "-m", "snakemake", "--cores", "1", "--dry-run"],
-                            cwd=REPO_ROOT, text=True, capture_output=True, timeout=300)
+    result = subprocess.run(
+        [sys.executable, "-m", "snakemake", "--cores", "1", "--dry-run"],
+        cwd=REPO_ROOT,
+        text=True,
+        capture_output=True,
+        timeout=300,
+    )
     assert result.returncode == 0, result.stderr[-3000:]

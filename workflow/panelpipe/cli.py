@@ -17,9 +17,9 @@ from pathlib import Path
 
 import yaml
 
+from .changes import compare_runs, render_changes
 from .config import REPO_ROOT, load_config, validate_config
 from .findings import PanelpipeError
-from .changes import compare_runs, render_changes
 from .runs import plan_runs
 from .survey import inspect_file, render_profile
 
@@ -47,11 +47,17 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
     finally:
         os.chdir(here)
     cmd = [
-        sys.executable, "-m", "snakemake",
-        "--snakefile", str(REPO_ROOT / "Snakefile"),
-        "--directory", str(workdir),
-        "--configfile", str(config_path),
-        "--cores", str(args.cores),
+        sys.executable,
+        "-m",
+        "snakemake",
+        "--snakefile",
+        str(REPO_ROOT / "Snakefile"),
+        "--directory",
+        str(workdir),
+        "--configfile",
+        str(config_path),
+        "--cores",
+        str(args.cores),
         "--keep-going",
         "--rerun-incomplete",
     ]
@@ -65,8 +71,16 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
         folder = out / name / run
         done = (folder / "report.html").is_file()
         status = "ok" if done else ("planned" if args.dry_run else "failed")
-        print(json.dumps({"analysis": name, "status": status, "run_id": run,
-                          "report": str(folder / "report.html") if done else None}))
+        print(
+            json.dumps(
+                {
+                    "analysis": name,
+                    "status": status,
+                    "run_id": run,
+                    "report": str(folder / "report.html") if done else None,
+                }
+            )
+        )
     if code != 0:
         sys.stderr.write(
             f"panelpipe: the workflow failed (Snakemake exit status {code}); the messages "
@@ -93,24 +107,32 @@ def _init(args: argparse.Namespace) -> int:
         regressors = [c for c in numeric if c not in {args.unit, args.period, args.outcome}]
     for col in [args.unit, args.period, args.outcome, *regressors]:
         if col not in columns:
-            raise PanelpipeError(f"{path}: column {col!r} not found; the file has "
-                                 f"{', '.join(map(repr, columns))}.")
+            raise PanelpipeError(
+                f"{path}: column {col!r} not found; the file has {', '.join(map(repr, columns))}."
+            )
     name = "".join(ch if ch.isalnum() else "_" for ch in path.stem.lower()).strip("_") or "panel"
     if not name[0].isalnum():
         name = "panel_" + name
     config = {
         "output_dir": "reports",
-        "analyses": {name: {
-            "sources": [str(path)], "unit": args.unit, "period": args.period,
-            "outcome": args.outcome, "regressors": regressors, "period_effects": True,
-            "cluster_by": [args.unit],
-            "estimators": ["pooled_ols", "fixed_effects", "random_effects"],
-            "inference": ["classical", "robust", "cluster"],
-        }},
+        "analyses": {
+            name: {
+                "sources": [str(path)],
+                "unit": args.unit,
+                "period": args.period,
+                "outcome": args.outcome,
+                "regressors": regressors,
+                "period_effects": True,
+                "cluster_by": [args.unit],
+                "estimators": ["pooled_ols", "fixed_effects", "random_effects"],
+                "inference": ["classical", "robust", "cluster"],
+            }
+        },
     }
     validate_config(config, origin="generated configuration")
-    text = ("# Written by `panelpipe init`; see config/README.md for every key.\n"
-            + yaml.safe_dump(config, sort_keys=False, allow_unicode=True))
+    text = "# Written by `panelpipe init`; see config/README.md for every key.\n" + yaml.safe_dump(
+        config, sort_keys=False, allow_unicode=True
+    )
     if args.output:
         out = Path(args.output)
         if out.exists():
@@ -134,8 +156,11 @@ def _parser() -> argparse.ArgumentParser:
         description="Validate, estimate, compare and audit panel regressions; one report per run.",
     )
     sub = parser.add_subparsers(dest="command", required=True)
-    run = sub.add_parser("run", help="run every analysis of a config through the workflow",
-                         description="Extra arguments after -- go to Snakemake unchanged.")
+    run = sub.add_parser(
+        "run",
+        help="run every analysis of a config through the workflow",
+        description="Extra arguments after -- go to Snakemake unchanged.",
+    )
     run.add_argument("--config", help="configuration file (default: config/config.yaml)")
     run.add_argument("--cores", type=int, default=2, help="cores Snakemake may use (default 2)")
     run.add_argument("--dry-run", action="store_true", help="show what would run, run nothing")
@@ -163,7 +188,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     extra: list[str] = []
     if "--" in argv:
         cut = argv.index("--")
-        argv, extra = argv[:cut], argv[cut + 1:]
+        argv, extra = argv[:cut], argv[cut + 1 :]
     args = _parser().parse_args(argv)
     try:
         if args.command == "run":

@@ -65,8 +65,10 @@ def hausman(fe: ModelResult, re: ModelResult) -> TestResult:
     if not common:
         return TestResult(name, null, invalid_reason="the two models share no slope coefficient")
     diff = (fe.params[common] - re.params[common]).to_numpy()
-    v = (fe.inference["classical"].cov.loc[common, common]
-         - re.inference["classical"].cov.loc[common, common]).to_numpy()
+    v = (
+        fe.inference["classical"].cov.loc[common, common]
+        - re.inference["classical"].cov.loc[common, common]
+    ).to_numpy()
     eig = np.linalg.eigvalsh(v)
     tol = max(eig.max(initial=0.0), 1e-300) * len(common) * 1e-10
     note = ""
@@ -77,13 +79,16 @@ def hausman(fe: ModelResult, re: ModelResult) -> TestResult:
         rank = int((eig > tol).sum())
         if rank == 0:
             return TestResult(
-                name, null,
+                name,
+                null,
                 invalid_reason="the covariance difference has no positive eigenvalue, so the "
                 "classical test is undefined here; rely on the cluster-robust comparison",
             )
         stat = float(diff @ np.linalg.pinv(v, rcond=1e-10, hermitian=True) @ diff)
         df = rank
-        note = (f"the covariance difference is not positive definite ({len(common) - rank} "
-                f"non-positive eigenvalue(s)); a generalised inverse with df = rank = {rank} "
-                "was used")
+        note = (
+            f"the covariance difference is not positive definite ({len(common) - rank} "
+            f"non-positive eigenvalue(s)); a generalised inverse with df = rank = {rank} "
+            "was used"
+        )
     return TestResult(name, null, stat, df, float(stats.chi2.sf(stat, df)), note)

@@ -109,9 +109,16 @@ class InferenceResult:
     @classmethod
     def from_dict(cls, key: str, d: Mapping[str, Any]) -> InferenceResult:
         cov = pd.DataFrame(d["cov"]).T
-        return cls(key, pd.Series(d["std_errors"]), cov.loc[cov.index, cov.index],
-                   pd.Series(d["p_values"]), pd.Series(d["ci_low"]), pd.Series(d["ci_high"]),
-                   d["reference"], d["note"])
+        return cls(
+            key,
+            pd.Series(d["std_errors"]),
+            cov.loc[cov.index, cov.index],
+            pd.Series(d["p_values"]),
+            pd.Series(d["ci_low"]),
+            pd.Series(d["ci_high"]),
+            d["reference"],
+            d["note"],
+        )
 
 
 @dataclass(frozen=True)
@@ -155,11 +162,16 @@ class ModelResult:
     def from_dict(cls, key: str, d: Mapping[str, Any]) -> ModelResult:
         """Rebuild a result written by `to_dict` (the run's models.json)."""
         return cls(
-            key=key, nobs=d["nobs"], units=d["units"], periods=d["periods"],
-            params=pd.Series(d["all_params"], dtype=float), terms=tuple(d["terms"]),
+            key=key,
+            nobs=d["nobs"],
+            units=d["units"],
+            periods=d["periods"],
+            params=pd.Series(d["all_params"], dtype=float),
+            terms=tuple(d["terms"]),
             omitted=d["omitted"],
             inference={k: InferenceResult.from_dict(k, v) for k, v in d["inference"].items()},
-            headline_inference=d["headline_inference"], statistics=d["statistics"],
+            headline_inference=d["headline_inference"],
+            statistics=d["statistics"],
         )
 
 
@@ -181,8 +193,9 @@ def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design
         [data[s.unit].astype(str).to_numpy(), data[s.period].to_numpy()], names=[s.unit, s.period]
     )
     y = pd.Series(data[s.outcome].to_numpy(dtype=float), index=index, name=s.outcome)
-    x = pd.DataFrame(data[list(s.regressors)].to_numpy(dtype=float), index=index,
-                     columns=list(s.regressors))
+    x = pd.DataFrame(
+        data[list(s.regressors)].to_numpy(dtype=float), index=index, columns=list(s.regressors)
+    )
     periods = pd.Index(np.sort(data[s.period].unique()))
     if s.period_effects and len(periods) > 1:
         codes = pd.Categorical(data[s.period].to_numpy(), categories=periods)
@@ -197,6 +210,7 @@ def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design
 
 
 # ---------------------------------------------------------------- identification
+
 
 def _demean(values: np.ndarray, codes: np.ndarray) -> np.ndarray:
     counts = np.bincount(codes)
@@ -237,8 +251,9 @@ def _transformed(design: Design, key: str) -> np.ndarray:
 
 def _unit_means(x: np.ndarray, unit: np.ndarray) -> np.ndarray:
     counts = np.bincount(unit)
-    means = np.column_stack([np.bincount(unit, weights=x[:, j]) / counts
-                             for j in range(x.shape[1])])
+    means = np.column_stack(
+        [np.bincount(unit, weights=x[:, j]) / counts for j in range(x.shape[1])]
+    )
     return means
 
 
@@ -284,6 +299,7 @@ def _time_invariant(design: Design, j: int) -> bool:
 
 # ---------------------------------------------------------------- fitting
 
+
 def _fit_kwargs(key: str, design: Design, estimator: str) -> dict[str, Any]:
     if key == "classical":
         return {"cov_type": "unadjusted", "debiased": True}
@@ -291,11 +307,14 @@ def _fit_kwargs(key: str, design: Design, estimator: str) -> dict[str, Any]:
         return {"cov_type": "robust", "debiased": True}
     if key == "cluster":
         codes = pd.DataFrame({"cluster": pd.factorize(design.clusters)[0]}, index=design.y.index)
-        return {"cov_type": "clustered", "debiased": True, "group_debias": True,
-                "clusters": codes}
+        return {"cov_type": "clustered", "debiased": True, "group_debias": True, "clusters": codes}
     if key == "driscoll_kraay":
-        return {"cov_type": "kernel", "kernel": "bartlett", "debiased": True,
-                "bandwidth": dk_bandwidth(design)}
+        return {
+            "cov_type": "kernel",
+            "kernel": "bartlett",
+            "debiased": True,
+            "bandwidth": dk_bandwidth(design),
+        }
     raise ValueError(f"unknown inference {key!r}")
 
 
@@ -357,9 +376,11 @@ def _inference(key: str, res: Any, design: Design, level: float) -> InferenceRes
     if key == "cluster":
         g = design.clusters.nunique()
         k = len(params)
-        note = (f"CR1 small-sample factor G/(G−1)·(N−1)/(N−K) with G={g}, N={n}, K={k} "
-                "(the coefficients estimated, period dummies included; unit effects nested in "
-                "the clusters are not counted).")
+        note = (
+            f"CR1 small-sample factor G/(G−1)·(N−1)/(N−K) with G={g}, N={n}, K={k} "
+            "(the coefficients estimated, period dummies included; unit effects nested in "
+            "the clusters are not counted)."
+        )
     elif key == "classical":
         note = "Error variance divided by the residual degrees of freedom (effects counted)."
     elif key == "robust":
@@ -377,8 +398,14 @@ def _inference(key: str, res: Any, design: Design, level: float) -> InferenceRes
     return InferenceResult(key, se, cov, p, params - crit * se, params + crit * se, name, note)
 
 
-def _fit_one(estimator: str, design: Design, terms: list[str], omitted: dict[str, str],
-             inference: tuple[str, ...], level: float) -> ModelResult:
+def _fit_one(
+    estimator: str,
+    design: Design,
+    terms: list[str],
+    omitted: dict[str, str],
+    inference: tuple[str, ...],
+    level: float,
+) -> ModelResult:
     model = _model(estimator, design, terms)
     results: dict[str, InferenceResult] = {}
     first: Any = None
@@ -444,18 +471,24 @@ def estimate_all(
             progress(estimator)
         terms, omitted = identifiable(design, estimator)
         for name, reason in omitted.items():
-            findings.append(Finding(
-                "regressor_not_identified", "info",
-                f"{ESTIMATOR_LABELS[estimator]}: {name!r} {reason}; it is left out of this "
-                "estimator only.",
-                {"estimator": estimator, "column": name},
-            ))
+            findings.append(
+                Finding(
+                    "regressor_not_identified",
+                    "info",
+                    f"{ESTIMATOR_LABELS[estimator]}: {name!r} {reason}; it is left out of this "
+                    "estimator only.",
+                    {"estimator": estimator, "column": name},
+                )
+            )
         if not terms:
-            findings.append(Finding(
-                "estimator_skipped", "warning",
-                f"{ESTIMATOR_LABELS[estimator]} cannot identify any regressor and was not fitted.",
-                {"estimator": estimator},
-            ))
+            findings.append(
+                Finding(
+                    "estimator_skipped",
+                    "warning",
+                    f"{ESTIMATOR_LABELS[estimator]} cannot identify any regressor; not fitted.",
+                    {"estimator": estimator},
+                )
+            )
             continue
         models[estimator] = _fit_one(estimator, design, terms, omitted, s.inference, s.level)
     return models, findings

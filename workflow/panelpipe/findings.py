@@ -6,7 +6,7 @@ from collections.abc import Iterable, Sequence
 from dataclasses import asdict, dataclass, field
 from typing import Any, Literal
 
-__all__ = ["Finding", "Severity", "PanelpipeError", "worst_status"]
+__all__ = ["Finding", "PanelpipeError", "Severity", "worst_status"]
 
 Severity = Literal["error", "warning", "info"]
 

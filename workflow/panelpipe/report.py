@@ -28,8 +28,16 @@ __all__ = ["SCHEMA_VERSION", "estimates_table", "recommend", "render_html", "res
 
 SCHEMA_VERSION = 1
 
-_ESTIMATES_COLUMNS = ["model", "term", "inference", "estimate", "std_error", "ci_low",
-                      "ci_high", "p_value"]
+_ESTIMATES_COLUMNS = [
+    "model",
+    "term",
+    "inference",
+    "estimate",
+    "std_error",
+    "ci_low",
+    "ci_high",
+    "p_value",
+]
 
 
 def estimates_table(models: Mapping[str, ModelResult]) -> pd.DataFrame:
@@ -39,13 +47,24 @@ def estimates_table(models: Mapping[str, ModelResult]) -> pd.DataFrame:
         terms = [t for t in m.params.index if t in m.terms or t == INTERCEPT]
         for inf_key, inf in m.inference.items():
             for t in terms:
-                rows.append((key, t, inf_key, m.params[t], inf.std_errors[t], inf.ci_low[t],
-                             inf.ci_high[t], inf.p_values[t]))
+                rows.append(
+                    (
+                        key,
+                        t,
+                        inf_key,
+                        m.params[t],
+                        inf.std_errors[t],
+                        inf.ci_low[t],
+                        inf.ci_high[t],
+                        inf.p_values[t],
+                    )
+                )
     return pd.DataFrame(rows, columns=_ESTIMATES_COLUMNS)
 
 
-def recommend(models: Mapping[str, ModelResult], tests: Mapping[str, TestResult],
-              alpha: float = 0.05) -> tuple[str, list[str]]:
+def recommend(
+    models: Mapping[str, ModelResult], tests: Mapping[str, TestResult], alpha: float = 0.05
+) -> tuple[str, list[str]]:
     """Which estimator the data support, with the reasons in plain words."""
     reasons: list[str] = []
     haus = tests.get("hausman")
@@ -64,8 +83,14 @@ def recommend(models: Mapping[str, ModelResult], tests: Mapping[str, TestResult]
             "uncorrelated errors; check the audit before relying on it."
         )
         return "random_effects", reasons
-    for key in ("fixed_effects", "first_difference", "correlated_random_effects",
-                "random_effects", "pooled_ols", "between"):
+    for key in (
+        "fixed_effects",
+        "first_difference",
+        "correlated_random_effects",
+        "random_effects",
+        "pooled_ols",
+        "between",
+    ):
         if key in models:
             reasons.append(
                 f"{ESTIMATOR_LABELS[key]} is the most robust estimator that ran; no comparison "
@@ -92,8 +117,10 @@ def results_document(
         "schema_version": SCHEMA_VERSION,
         "analysis": analysis,
         "run_id": run,
-        "data": {k: summary.get(k) for k in
-                 ("rows", "units", "periods", "balanced", "first_period", "last_period")},
+        "data": {
+            k: summary.get(k)
+            for k in ("rows", "units", "periods", "balanced", "first_period", "last_period")
+        },
         "validation": {"status": status, "findings": [f.to_dict() for f in findings]},
         "models": {
             k: {kk: v for kk, v in m.to_dict().items() if kk not in {"inference", "all_params"}}
@@ -112,11 +139,15 @@ _PALETTE = ["#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00"]  #
 
 def _svg(fig: Any) -> str:
     buf = io.StringIO()
-    fig.savefig(buf, format="svg", bbox_inches="tight",
-                metadata={"Creator": None, "Date": None, "Format": None, "Type": None})
+    fig.savefig(
+        buf,
+        format="svg",
+        bbox_inches="tight",
+        metadata={"Creator": None, "Date": None, "Format": None, "Type": None},
+    )
     plt.close(fig)
     text = buf.getvalue()
-    return text[text.index("<svg"):]
+    return text[text.index("<svg") :]
 
 
 def coefficient_figure(models: Mapping[str, ModelResult], regressors: Sequence[str]) -> str:
@@ -124,15 +155,20 @@ def coefficient_figure(models: Mapping[str, ModelResult], regressors: Sequence[s
     n = len(regressors)
     fig, axes = plt.subplots(1, n, figsize=(3.1 * n, 0.45 * len(models) + 1.4), squeeze=False)
     keys = list(models)
-    for ax, term in zip(axes[0], regressors):
+    for ax, term in zip(axes[0], regressors, strict=True):
         for i, key in enumerate(keys):
             m = models[key]
             if term not in m.terms:
                 continue
             inf = m.inference[m.headline_inference]
-            ax.errorbar(m.params[term], i, xerr=[[m.params[term] - inf.ci_low[term]],
-                                                 [inf.ci_high[term] - m.params[term]]],
-                        fmt="o", color=_PALETTE[i % len(_PALETTE)], capsize=3)
+            ax.errorbar(
+                m.params[term],
+                i,
+                xerr=[[m.params[term] - inf.ci_low[term]], [inf.ci_high[term] - m.params[term]]],
+                fmt="o",
+                color=_PALETTE[i % len(_PALETTE)],
+                capsize=3,
+            )
         ax.axvline(0.0, color="#999999", lw=0.8, ls=":")
         ax.set_yticks(range(len(keys)))
         ax.set_yticklabels([ESTIMATOR_LABELS[k] for k in keys] if ax is axes[0][0] else [])
@@ -147,10 +183,12 @@ def presence_figure(panel: pd.DataFrame, unit: str, period: str) -> str:
     """Which unit was observed in which period (filled = observed)."""
     grid = pd.crosstab(panel[unit], panel[period]).clip(upper=1)
     shown = grid.iloc[:80]
-    fig, ax = plt.subplots(figsize=(min(0.32 * grid.shape[1] + 2, 11),
-                                    min(0.14 * len(shown) + 1.2, 9)))
-    ax.imshow(shown.to_numpy(), aspect="auto", cmap="Blues", vmin=0, vmax=1.3,
-              interpolation="nearest")
+    fig, ax = plt.subplots(
+        figsize=(min(0.32 * grid.shape[1] + 2, 11), min(0.14 * len(shown) + 1.2, 9))
+    )
+    ax.imshow(
+        shown.to_numpy(), aspect="auto", cmap="Blues", vmin=0, vmax=1.3, interpolation="nearest"
+    )
     ax.set_xticks(range(grid.shape[1]))
     ax.set_xticklabels([str(c) for c in grid.columns], rotation=90, fontsize=7)
     step = max(1, len(shown) // 20)
@@ -188,14 +226,18 @@ def variance_share_figure(panel: pd.DataFrame, unit: str, regressors: Sequence[s
 
 # ---------------------------------------------------------------- HTML
 
+
 def _fmt(value: Any, digits: int = 4) -> str:
     if value is None:
         return "–"
     if isinstance(value, float):
         if not np.isfinite(value):
             return "–"
-        return f"{value:.{digits}g}" if abs(value) >= 1e4 or abs(value) < 1e-3 else \
-            f"{value:.{digits}f}"
+        return (
+            f"{value:.{digits}g}"
+            if abs(value) >= 1e4 or abs(value) < 1e-3
+            else f"{value:.{digits}f}"
+        )
     return str(value)
 
 

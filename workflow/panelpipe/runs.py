@@ -43,8 +43,13 @@ def file_digest(path: Path) -> str:
 def code_fingerprint(root: Path = REPO_ROOT) -> str:
     """Hash of the package, the workflow rules and scripts and the templates."""
     h = hashlib.sha256(__version__.encode())
-    patterns = ("workflow/panelpipe/**/*.py", "workflow/panelpipe/templates/*",
-                "workflow/rules/*.smk", "workflow/scripts/*.py", "Snakefile")
+    patterns = (
+        "workflow/panelpipe/**/*.py",
+        "workflow/panelpipe/templates/*",
+        "workflow/rules/*.smk",
+        "workflow/scripts/*.py",
+        "Snakefile",
+    )
     files = sorted({p for pat in patterns for p in root.glob(pat) if p.is_file()})
     for p in files:
         h.update(p.relative_to(root).as_posix().encode())

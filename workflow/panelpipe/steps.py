@@ -66,15 +66,18 @@ def ingest_step(settings: AnalysisSettings, panel_out: str, sources_out: str) ->
     paths = resolve_sources(settings.sources, analysis=settings.name)
     panel = read_panel(paths, settings.columns, unit=settings.unit)
     counts = panel["_source"].value_counts(sort=False)
-    sources = [{"path": str(p), "sha256": file_digest(p), "rows": int(counts.get(str(p), 0))}
-               for p in paths]
+    sources = [
+        {"path": str(p), "sha256": file_digest(p), "rows": int(counts.get(str(p), 0))}
+        for p in paths
+    ]
     Path(panel_out).parent.mkdir(parents=True, exist_ok=True)
     panel.to_parquet(panel_out, index=False)
     _write_json(sources_out, sources)
 
 
-def validate_step(settings: AnalysisSettings, raw_in: str, panel_out: str,
-                  validation_out: str) -> None:
+def validate_step(
+    settings: AnalysisSettings, raw_in: str, panel_out: str, validation_out: str
+) -> None:
     """Validate the stacked panel; on errors write the findings and stop."""
     raw = pd.read_parquet(raw_in)
     result = validate_panel(raw, settings)
@@ -101,17 +104,21 @@ def estimate_step(settings: AnalysisSettings, panel_in: str, models_out: str) ->
     findings += more
     if not models:
         raise PanelpipeError(f"analysis {settings.name!r}: no estimator could be fitted.", findings)
-    _write_json(models_out, {
-        "models": {k: m.to_dict() for k, m in models.items()},
-        "findings": [f.to_dict() for f in findings],
-    })
+    _write_json(
+        models_out,
+        {
+            "models": {k: m.to_dict() for k, m in models.items()},
+            "findings": [f.to_dict() for f in findings],
+        },
+    )
 
 
 def _load_models(path: str) -> tuple[dict[str, ModelResult], list[Finding]]:
     doc = _read_json(path)
     models = {k: ModelResult.from_dict(k, v) for k, v in doc["models"].items()}
-    findings = [Finding(f["code"], f["severity"], f["message"], f.get("where", {}))
-                for f in doc["findings"]]
+    findings = [
+        Finding(f["code"], f["severity"], f["message"], f.get("where", {})) for f in doc["findings"]
+    ]
     return models, findings
 
 
@@ -127,16 +134,32 @@ def compare_step(settings: AnalysisSettings, models_in: str, tests_out: str) -> 
 def _load_tests(path: str) -> dict[str, TestResult]:
     doc = _read_json(path)
     return {
-        k: TestResult(v["name"], v["null"], v.get("statistic"), v.get("df"), v.get("p_value"),
-                      v.get("note", ""), v.get("invalid_reason", ""))
+        k: TestResult(
+            v["name"],
+            v["null"],
+            v.get("statistic"),
+            v.get("df"),
+            v.get("p_value"),
+            v.get("note", ""),
+            v.get("invalid_reason", ""),
+        )
         for k, v in doc.items()
     }
 
 
 def _versions() -> dict[str, str]:
     out = {"python": platform.python_version(), "panelpipe": __version__}
-    for pkg in ("linearmodels", "statsmodels", "pandas", "numpy", "scipy", "pyarrow",
-                "snakemake", "matplotlib", "jinja2"):
+    for pkg in (
+        "linearmodels",
+        "statsmodels",
+        "pandas",
+        "numpy",
+        "scipy",
+        "pyarrow",
+        "snakemake",
+        "matplotlib",
+        "jinja2",
+    ):
         try:
             out[pkg] = metadata.version(pkg)
         except metadata.PackageNotFoundError:
@@ -172,14 +195,23 @@ def report_step(
     models, model_findings = _load_models(models_in)
     tests = _load_tests(tests_in)
     panel = pd.read_parquet(panel_in)
-    findings = [Finding(f["code"], f["severity"], f["message"], f.get("where", {}))
-                for f in validation["findings"]] + model_findings
+    findings = [
+        Finding(f["code"], f["severity"], f["message"], f.get("where", {}))
+        for f in validation["findings"]
+    ] + model_findings
     status = validation["status"]
     recommended, reasons = recommend(models, tests)
     summary = validation["summary"]
     doc = results_document(
-        analysis=settings.name, run=run, summary=summary, findings=findings, status=status,
-        models=models, tests=tests, recommended=recommended, reasons=reasons,
+        analysis=settings.name,
+        run=run,
+        summary=summary,
+        findings=findings,
+        status=status,
+        models=models,
+        tests=tests,
+        recommended=recommended,
+        reasons=reasons,
     )
     table = estimates_table(models)
     created = dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat()
@@ -199,31 +231,54 @@ def report_step(
     headline = None
     if focus in rec.terms:
         inf = rec.inference[rec.headline_inference]
-        headline = {"estimate": float(rec.params[focus]), "std_error": float(inf.std_errors[focus]),
-                    "ci_low": float(inf.ci_low[focus]), "ci_high": float(inf.ci_high[focus]),
-                    "inference": rec.headline_inference}
+        headline = {
+            "estimate": float(rec.params[focus]),
+            "std_error": float(inf.std_errors[focus]),
+            "ci_low": float(inf.ci_low[focus]),
+            "ci_high": float(inf.ci_high[focus]),
+            "inference": rec.headline_inference,
+        }
     terms = list(dict.fromkeys([*settings.regressors, INTERCEPT]))
-    html = render_html({
-        "analysis": settings.name, "run_id": run, "created": created, "version": __version__,
-        "outcome": settings.outcome, "regressors": list(settings.regressors), "focus": focus,
-        "unit": settings.unit, "period": settings.period, "level": settings.level,
-        "data": doc["data"], "summary": summary, "sources": sources, "findings": findings,
-        "validation_status": status,
-        "n_warnings": sum(f.severity == "warning" for f in findings),
-        "models": models, "tests": tests, "recommended": recommended, "reasons": reasons,
-        "headline": headline, "table_terms": terms, "intercept": INTERCEPT,
-        "inference_keys": list(settings.inference),
-        "period_effects_note": {
-            k: ("yes" if settings.period_effects and k != "between" else "no") for k in models
-        },
-        "figures": {
-            "coefficients": coefficient_figure(models, settings.regressors),
-            "presence": presence_figure(panel, settings.unit, settings.period),
-            "variance": variance_share_figure(panel, settings.unit, settings.regressors),
-        },
-        "versions": manifest["versions"],
-        "settings_yaml": yaml.safe_dump(settings.to_dict(), sort_keys=False, allow_unicode=True),
-    })
+    html = render_html(
+        {
+            "analysis": settings.name,
+            "run_id": run,
+            "created": created,
+            "version": __version__,
+            "outcome": settings.outcome,
+            "regressors": list(settings.regressors),
+            "focus": focus,
+            "unit": settings.unit,
+            "period": settings.period,
+            "level": settings.level,
+            "data": doc["data"],
+            "summary": summary,
+            "sources": sources,
+            "findings": findings,
+            "validation_status": status,
+            "n_warnings": sum(f.severity == "warning" for f in findings),
+            "models": models,
+            "tests": tests,
+            "recommended": recommended,
+            "reasons": reasons,
+            "headline": headline,
+            "table_terms": terms,
+            "intercept": INTERCEPT,
+            "inference_keys": list(settings.inference),
+            "period_effects_note": {
+                k: ("yes" if settings.period_effects and k != "between" else "no") for k in models
+            },
+            "figures": {
+                "coefficients": coefficient_figure(models, settings.regressors),
+                "presence": presence_figure(panel, settings.unit, settings.period),
+                "variance": variance_share_figure(panel, settings.unit, settings.regressors),
+            },
+            "versions": manifest["versions"],
+            "settings_yaml": yaml.safe_dump(
+                settings.to_dict(), sort_keys=False, allow_unicode=True
+            ),
+        }
+    )
     atomic_write_text(Path(outputs["estimates"]), table.to_csv(index=False, lineterminator="\n"))
     _write_json(outputs["results"], doc)
     _write_json(outputs["manifest"], manifest)

@@ -35,8 +35,9 @@ def _period_like(values: pd.Series) -> bool:
     return bool(whole and numbers.between(1800, 2200).all() and 1 < numbers.nunique() <= 400)
 
 
-def inspect_file(path: Path, *, unit: str | None = None, period: str | None = None
-                 ) -> dict[str, Any]:
+def inspect_file(
+    path: Path, *, unit: str | None = None, period: str | None = None
+) -> dict[str, Any]:
     """Profile a file as a panel; guess unit and period columns unless given."""
     frame = _read(Path(path))
     n = len(frame)
@@ -44,16 +45,22 @@ def inspect_file(path: Path, *, unit: str | None = None, period: str | None = No
     for col in frame.columns:
         values = frame[col]
         numeric = pd.to_numeric(values, errors="coerce")
-        columns.append({
-            "name": str(col),
-            "numeric": bool(values.notna().sum() and numeric.notna().sum() == values.notna().sum()),
-            "missing": int(values.isna().sum()),
-            "distinct": int(values.nunique()),
-        })
+        columns.append(
+            {
+                "name": str(col),
+                "numeric": bool(
+                    values.notna().sum() and numeric.notna().sum() == values.notna().sum()
+                ),
+                "missing": int(values.isna().sum()),
+                "distinct": int(values.nunique()),
+            }
+        )
     for given, what in ((unit, "unit"), (period, "period")):
         if given is not None and given not in frame.columns:
-            raise PanelpipeError(f"{path}: {what} column {given!r} not found; the file has "
-                                 f"{', '.join(map(repr, map(str, frame.columns)))}.")
+            raise PanelpipeError(
+                f"{path}: {what} column {given!r} not found; the file has "
+                f"{', '.join(map(repr, map(str, frame.columns)))}."
+            )
     periods = [period] if period else [str(c) for c in frame.columns if _period_like(frame[c])]
     units: list[str] = []
     if unit:
@@ -68,8 +75,13 @@ def inspect_file(path: Path, *, unit: str | None = None, period: str | None = No
                 continue  # measurements, not identifiers
             if not frame.duplicated([col, p]).any():
                 units.append(str(col))
-    profile: dict[str, Any] = {"file": str(path), "rows": n, "columns": columns,
-                               "unit_candidates": units, "period_candidates": periods}
+    profile: dict[str, Any] = {
+        "file": str(path),
+        "rows": n,
+        "columns": columns,
+        "unit_candidates": units,
+        "period_candidates": periods,
+    }
     if units and periods:
         u, p = units[0], periods[0]
         keys = frame[[u, p]]
@@ -79,7 +91,10 @@ def inspect_file(path: Path, *, unit: str | None = None, period: str | None = No
         by_unit = span.groupby(keys[u]).agg(["min", "max", "count"])
         gaps = int(((by_unit["max"] - by_unit["min"] + 1) - by_unit["count"]).clip(lower=0).sum())
         profile["panel"] = {
-            "unit": u, "period": p, "units": int(keys[u].nunique()), "periods": int(all_periods),
+            "unit": u,
+            "period": p,
+            "units": int(keys[u].nunique()),
+            "periods": int(all_periods),
             "balanced": bool((per_unit == all_periods).all()),
             "complete_units": int((per_unit == all_periods).sum()),
             "duplicate_keys": int(keys.duplicated().sum()),
@@ -96,15 +111,25 @@ def render_profile(profile: dict[str, Any]) -> str:
     lines.append(f"  {'column'.ljust(width)}  kind     distinct  missing")
     for c in profile["columns"]:
         kind = "number" if c["numeric"] else "text"
-        lines.append(f"  {c['name'].ljust(width)}  {kind:<7}  {c['distinct']:>8}  {c['missing']:>7}")
+        lines.append(
+            f"  {c['name'].ljust(width)}  {kind:<7}  {c['distinct']:>8}  {c['missing']:>7}"
+        )
     lines.append("")
-    lines.append("unit column candidates:   " + (", ".join(profile["unit_candidates"]) or "none found"))
-    lines.append("period column candidates: " + (", ".join(profile["period_candidates"])
-                                                 or "none found"))
+    lines.append(
+        "unit column candidates:   " + (", ".join(profile["unit_candidates"]) or "none found")
+    )
+    lines.append(
+        "period column candidates: " + (", ".join(profile["period_candidates"]) or "none found")
+    )
     panel = profile.get("panel")
     if panel:
-        shape = "balanced" if panel["balanced"] else (
-            f"unbalanced: {panel['complete_units']} of {panel['units']} units in every period")
+        shape = (
+            "balanced"
+            if panel["balanced"]
+            else (
+                f"unbalanced: {panel['complete_units']} of {panel['units']} units in every period"
+            )
+        )
         lines += [
             "",
             f"as a panel of {panel['unit']} × {panel['period']}: {panel['units']} units, "

@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 
 from .config import AnalysisSettings
-from .findings import Finding, worst_status
+from .findings import Finding, Severity, worst_status
 from .ingest import LINE, SOURCE
 
 __all__ = ["FEW_CLUSTERS", "ValidationResult", "validate_panel"]
@@ -49,7 +49,9 @@ class ValidationResult:
 def _places(panel: pd.DataFrame, mask: pd.Series) -> tuple[str, list[dict[str, Any]]]:
     """Quote the first offending rows as 'file line N' and structured records."""
     rows = panel.loc[mask, [SOURCE, LINE]].head(_LISTED)
-    records = [{"file": str(s), "line": int(n)} for s, n in zip(rows[SOURCE], rows[LINE])]
+    records = [
+        {"file": str(s), "line": int(n)} for s, n in zip(rows[SOURCE], rows[LINE], strict=True)
+    ]
     text = "; ".join(f"{r['file']} line {r['line']}" for r in records)
     extra = int(mask.sum()) - len(records)
     if extra > 0:
@@ -62,22 +64,28 @@ def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) ->
     changed = (unit != panel[s.unit]).fillna(False)
     if changed.any():
         text, records = _places(panel, changed)
-        out.append(Finding(
-            "unit_whitespace", "warning",
-            f"{int(changed.sum())} value(s) of unit column {s.unit!r} had leading or trailing "
-            f"spaces, removed before matching units: {text}.",
-            {"column": s.unit, "rows": records},
-        ))
+        out.append(
+            Finding(
+                "unit_whitespace",
+                "warning",
+                f"{int(changed.sum())} value(s) of unit column {s.unit!r} had leading or trailing "
+                f"spaces, removed before matching units: {text}.",
+                {"column": s.unit, "rows": records},
+            )
+        )
         panel = panel.assign(**{s.unit: unit})
     missing_unit = panel[s.unit].isna() | (panel[s.unit] == "")
     if missing_unit.any():
         text, records = _places(panel, missing_unit)
-        out.append(Finding(
-            "missing_unit", "error",
-            f"{int(missing_unit.sum())} row(s) have no value in unit column {s.unit!r}: {text}. "
-            "Fill in the unit or remove the rows.",
-            {"column": s.unit, "rows": records},
-        ))
+        out.append(
+            Finding(
+                "missing_unit",
+                "error",
+                f"{int(missing_unit.sum())} row(s) have no value in unit column {s.unit!r}: "
+                f"{text}. Fill in the unit or remove the rows.",
+                {"column": s.unit, "rows": records},
+            )
+        )
     raw_period = panel[s.period]
     period = pd.to_numeric(raw_period, errors="coerce")
     bad_period = period.isna() | ~np.isfinite(period.astype("float64").fillna(0.0))
@@ -85,12 +93,15 @@ def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) ->
         bad_period = period.astype("float64") != np.floor(period.astype("float64"))
     if bad_period.any():
         text, records = _places(panel, bad_period)
-        out.append(Finding(
-            "bad_period", "error",
-            f"{int(bad_period.sum())} row(s) have a missing or non-integer period in column "
-            f"{s.period!r}: {text}. Periods must be whole numbers such as years.",
-            {"column": s.period, "rows": records},
-        ))
+        out.append(
+            Finding(
+                "bad_period",
+                "error",
+                f"{int(bad_period.sum())} row(s) have a missing or non-integer period in column "
+                f"{s.period!r}: {text}. Periods must be whole numbers such as years.",
+                {"column": s.period, "rows": records},
+            )
+        )
     else:
         panel = panel.assign(**{s.period: period.astype("int64")})
     if not (missing_unit.any() or bad_period.any()):
@@ -99,18 +110,23 @@ def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) ->
             keys = panel.loc[dup, [s.unit, s.period, SOURCE, LINE]].head(2 * _LISTED)
             records = [
                 {"unit": str(u), "period": int(p), "file": str(f), "line": int(n)}
-                for u, p, f, n in zip(keys[s.unit], keys[s.period], keys[SOURCE], keys[LINE])
+                for u, p, f, n in zip(
+                    keys[s.unit], keys[s.period], keys[SOURCE], keys[LINE], strict=True
+                )
             ]
             text = "; ".join(
                 f"({r['unit']}, {r['period']}) at {r['file']} line {r['line']}" for r in records
             )
             n_keys = int(panel.loc[dup].drop_duplicates([s.unit, s.period]).shape[0])
-            out.append(Finding(
-                "duplicate_keys", "error",
-                f"{n_keys} unit-period key(s) appear more than once: {text}. Each unit may have "
-                "one row per period; remove the repeats or fix the keys.",
-                {"keys": records},
-            ))
+            out.append(
+                Finding(
+                    "duplicate_keys",
+                    "error",
+                    f"{n_keys} unit-period key(s) appear more than once: {text}. "
+                    "Each unit may have one row per period; remove the repeats or fix the keys.",
+                    {"keys": records},
+                )
+            )
     return panel
 
 
@@ -124,20 +140,26 @@ def _check_numeric(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding])
         if not_number.any():
             text, records = _places(panel, not_number)
             sample = ", ".join(repr(str(v)) for v in raw[not_number].head(3))
-            out.append(Finding(
-                "non_numeric", "error",
-                f"column {col!r} must be numeric but {int(not_number.sum())} value(s) are not "
-                f"(e.g. {sample}): {text}. Correct the values or leave them empty for missing.",
-                {"column": col, "rows": records},
-            ))
-        infinite = np.isinf(values)
+            out.append(
+                Finding(
+                    "non_numeric",
+                    "error",
+                    f"column {col!r} must be numeric but {int(not_number.sum())} value(s) are not "
+                    f"(e.g. {sample}): {text}. Correct the values or leave them empty for missing.",
+                    {"column": col, "rows": records},
+                )
+            )
+        infinite = pd.Series(np.isinf(values.to_numpy()), index=values.index)
         if infinite.any():
             text, records = _places(panel, infinite)
-            out.append(Finding(
-                "non_finite", "error",
-                f"column {col!r} holds {int(infinite.sum())} infinite value(s): {text}.",
-                {"column": col, "rows": records},
-            ))
+            out.append(
+                Finding(
+                    "non_finite",
+                    "error",
+                    f"column {col!r} holds {int(infinite.sum())} infinite value(s): {text}.",
+                    {"column": col, "rows": records},
+                )
+            )
         converted[col] = values
     return panel.assign(**converted)
 
@@ -163,34 +185,48 @@ def _summarise(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> 
         "gaps": gaps,
     }
     if balanced:
-        out.append(Finding(
-            "balance", "info", f"The panel is balanced: {units} units × {n_periods} periods."
-        ))
+        out.append(
+            Finding(
+                "balance", "info", f"The panel is balanced: {units} units × {n_periods} periods."
+            )
+        )
     else:
-        out.append(Finding(
-            "balance", "info",
-            f"The panel is unbalanced: {complete} of {units} units are observed in all "
-            f"{n_periods} periods; {gaps} unit-period(s) are missing inside units' spans.",
-        ))
+        out.append(
+            Finding(
+                "balance",
+                "info",
+                f"The panel is unbalanced: {complete} of {units} units are observed in all "
+                f"{n_periods} periods; {gaps} unit-period(s) are missing inside units' spans.",
+            )
+        )
     singletons = int((per_unit["count"] == 1).sum())
     if singletons:
-        out.append(Finding(
-            "singleton_units", "warning",
-            f"{singletons} unit(s) are observed in one period only; they carry no information "
-            "for fixed effects or first differences.",
-        ))
+        out.append(
+            Finding(
+                "singleton_units",
+                "warning",
+                f"{singletons} unit(s) are observed in one period only; they carry no information "
+                "for fixed effects or first differences.",
+            )
+        )
     if units < int(s.gates.get("min_units", 2)):
-        out.append(Finding(
-            "too_few_units", "error",
-            f"the panel has {units} unit(s) in column {s.unit!r}; at least "
-            f"{s.gates.get('min_units', 2)} are needed (gate min_units).",
-        ))
+        out.append(
+            Finding(
+                "too_few_units",
+                "error",
+                f"the panel has {units} unit(s) in column {s.unit!r}; at least "
+                f"{s.gates.get('min_units', 2)} are needed (gate min_units).",
+            )
+        )
     if n_periods < int(s.gates.get("min_periods", 2)):
-        out.append(Finding(
-            "too_few_periods", "error",
-            f"the panel has {n_periods} period(s) in column {s.period!r}; at least "
-            f"{s.gates.get('min_periods', 2)} are needed (gate min_periods).",
-        ))
+        out.append(
+            Finding(
+                "too_few_periods",
+                "error",
+                f"the panel has {n_periods} period(s) in column {s.period!r}; at least "
+                f"{s.gates.get('min_periods', 2)} are needed (gate min_periods).",
+            )
+        )
     return summary
 
 
@@ -200,23 +236,33 @@ def _check_missing(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding])
     counts = missing.sum()
     for col, n in counts.items():
         if n:
-            out.append(Finding(
-                "missing_values", "warning",
-                f"column {col!r} is empty in {int(n)} of {len(panel)} rows.",
-                {"column": str(col), "count": int(n)},
-            ))
+            out.append(
+                Finding(
+                    "missing_values",
+                    "warning",
+                    f"column {col!r} is empty in {int(n)} of {len(panel)} rows.",
+                    {"column": str(col), "count": int(n)},
+                )
+            )
     dropped = int(missing.any(axis=1).sum())
     share = dropped / len(panel) if len(panel) else 0.0
     limit = float(s.gates.get("max_dropped_share", 0.5))
     if dropped:
-        severity = "error" if share > limit else "info"
-        out.append(Finding(
-            "rows_dropped", severity,
-            f"{dropped} row(s) ({share:.1%}) have a missing outcome or regressor and are left "
-            f"out of every estimator" + (f", more than the gate max_dropped_share={limit}." if
-                                          severity == "error" else "."),
-            {"count": dropped, "share": share},
-        ))
+        severity: Severity = "error" if share > limit else "info"
+        out.append(
+            Finding(
+                "rows_dropped",
+                severity,
+                f"{dropped} row(s) ({share:.1%}) have a missing outcome or regressor and are left "
+                f"out of every estimator"
+                + (
+                    f", more than the gate max_dropped_share={limit}."
+                    if severity == "error"
+                    else "."
+                ),
+                {"count": dropped, "share": share},
+            )
+        )
 
 
 def _check_regressors(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> None:
@@ -225,19 +271,25 @@ def _check_regressors(panel: pd.DataFrame, s: AnalysisSettings, out: list[Findin
         total = float(x.var(ddof=0)) if x.notna().sum() > 1 else 0.0
         within = float((x - x.groupby(panel[s.unit]).transform("mean")).var(ddof=0))
         if total == 0.0:
-            out.append(Finding(
-                "constant_regressor", "error",
-                f"regressor {col!r} takes one value in every row; no estimator can use it. "
-                "Remove it from the regressors.",
-                {"column": col},
-            ))
+            out.append(
+                Finding(
+                    "constant_regressor",
+                    "error",
+                    f"regressor {col!r} takes one value in every row; no estimator can use it. "
+                    "Remove it from the regressors.",
+                    {"column": col},
+                )
+            )
         elif within <= 1e-12 * total:
-            out.append(Finding(
-                "time_invariant_regressor", "info",
-                f"regressor {col!r} does not change within units; fixed effects and first "
-                "differences cannot estimate it and leave it out.",
-                {"column": col},
-            ))
+            out.append(
+                Finding(
+                    "time_invariant_regressor",
+                    "info",
+                    f"regressor {col!r} does not change within units; fixed effects and first "
+                    "differences cannot estimate it and leave it out.",
+                    {"column": col},
+                )
+            )
 
 
 def _check_clusters(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> None:
@@ -245,13 +297,16 @@ def _check_clusters(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]
     sizes = panel.groupby(col, observed=True).size()
     g = len(sizes)
     if g < FEW_CLUSTERS and "cluster" in s.inference:
-        out.append(Finding(
-            "few_clusters", "warning",
-            f"only {g} clusters in {col!r} (smallest {int(sizes.min())} rows, largest "
-            f"{int(sizes.max())}); cluster-robust standard errors are unreliable below about "
-            f"{FEW_CLUSTERS} clusters.",
-            {"clusters": g},
-        ))
+        out.append(
+            Finding(
+                "few_clusters",
+                "warning",
+                f"only {g} clusters in {col!r} (smallest {int(sizes.min())} rows, largest "
+                f"{int(sizes.max())}); cluster-robust standard errors are unreliable below about "
+                f"{FEW_CLUSTERS} clusters.",
+                {"clusters": g},
+            )
+        )
 
 
 def validate_panel(raw: pd.DataFrame, settings: AnalysisSettings) -> ValidationResult:

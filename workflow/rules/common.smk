@@ -1,4 +1,5 @@
 # Configuration checks, run ids and input functions shared by every rule.
+import os
 import sys
 
 from panelpipe.config import analysis_settings, resolve_sources, validate_config
@@ -13,7 +14,11 @@ except PanelpipeError as err:
     raise SystemExit(2)
 
 OUT = config["output_dir"].rstrip("/")
-RUN_DIR = OUT + "/{analysis}/{run_id}"
+
+
+def run_path(leaf):
+    """A file of a run folder: <output_dir>/<analysis>/<run_id>/<leaf>."""
+    return os.path.join(OUT, "{analysis}", "{run_id}", leaf)
 
 
 wildcard_constraints:
@@ -23,7 +28,7 @@ wildcard_constraints:
 
 def all_reports():
     return [
-        f"{OUT}/{name}/{run}/{leaf}"
+        os.path.join(OUT, name, run, leaf)
         for name, run in RUNS.items()
         for leaf in ("report.html", "results.json", "estimates.csv", "manifest.json")
     ]

@@ -1,13 +1,13 @@
 rule compare:
     input:
-        models=RUN_DIR + "/work/models.json",
+        models=run_path("work/models.json"),
     output:
-        tests=RUN_DIR + "/work/tests.json",
+        tests=run_path("work/tests.json"),
+    log:
+        run_path("logs/compare.log"),
+    benchmark:
+        run_path("benchmarks/compare.tsv")
     params:
         settings=analysis_settings_of,
-    log:
-        RUN_DIR + "/logs/compare.log",
-    benchmark:
-        RUN_DIR + "/benchmarks/compare.tsv"
     script:
         "../scripts/compare.py"

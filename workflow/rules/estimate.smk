@@ -1,13 +1,13 @@
 rule estimate:
     input:
-        panel=RUN_DIR + "/work/panel.parquet",
+        panel=run_path("work/panel.parquet"),
     output:
-        models=RUN_DIR + "/work/models.json",
+        models=run_path("work/models.json"),
+    log:
+        run_path("logs/estimate.log"),
+    benchmark:
+        run_path("benchmarks/estimate.tsv")
     params:
         settings=analysis_settings_of,
-    log:
-        RUN_DIR + "/logs/estimate.log",
-    benchmark:
-        RUN_DIR + "/benchmarks/estimate.tsv"
     script:
         "../scripts/estimate.py"

@@ -2,13 +2,13 @@ rule ingest:
     input:
         sources=analysis_sources,
     output:
-        panel=RUN_DIR + "/work/raw.parquet",
-        sources=RUN_DIR + "/work/sources.json",
+        panel=run_path("work/raw.parquet"),
+        sources=run_path("work/sources.json"),
+    log:
+        run_path("logs/ingest.log"),
+    benchmark:
+        run_path("benchmarks/ingest.tsv")
     params:
         settings=analysis_settings_of,
-    log:
-        RUN_DIR + "/logs/ingest.log",
-    benchmark:
-        RUN_DIR + "/benchmarks/ingest.tsv"
     script:
         "../scripts/ingest.py"

@@ -1,21 +1,21 @@
 rule report:
     input:
-        sources=RUN_DIR + "/work/sources.json",
-        panel=RUN_DIR + "/work/panel.parquet",
-        validation=RUN_DIR + "/work/validation.json",
-        models=RUN_DIR + "/work/models.json",
-        tests=RUN_DIR + "/work/tests.json",
+        sources=run_path("work/sources.json"),
+        panel=run_path("work/panel.parquet"),
+        validation=run_path("work/validation.json"),
+        models=run_path("work/models.json"),
+        tests=run_path("work/tests.json"),
     output:
-        html=protected(RUN_DIR + "/report.html"),
-        results=protected(RUN_DIR + "/results.json"),
-        estimates=protected(RUN_DIR + "/estimates.csv"),
-        manifest=protected(RUN_DIR + "/manifest.json"),
+        html=protected(run_path("report.html")),
+        results=protected(run_path("results.json")),
+        estimates=protected(run_path("estimates.csv")),
+        manifest=protected(run_path("manifest.json")),
+    log:
+        run_path("logs/report.log"),
+    benchmark:
+        run_path("benchmarks/report.tsv")
     params:
         settings=analysis_settings_of,
         config=analysis_config,
-    log:
-        RUN_DIR + "/logs/report.log",
-    benchmark:
-        RUN_DIR + "/benchmarks/report.tsv"
     script:
         "../scripts/report.py"

@@ -1,14 +1,14 @@
 rule validate:
     input:
-        panel=RUN_DIR + "/work/raw.parquet",
+        panel=run_path("work/raw.parquet"),
     output:
-        panel=RUN_DIR + "/work/panel.parquet",
-        validation=RUN_DIR + "/work/validation.json",
+        panel=run_path("work/panel.parquet"),
+        validation=run_path("work/validation.json"),
+    log:
+        run_path("logs/validate.log"),
+    benchmark:
+        run_path("benchmarks/validate.tsv")
     params:
         settings=analysis_settings_of,
-    log:
-        RUN_DIR + "/logs/validate.log",
-    benchmark:
-        RUN_DIR + "/benchmarks/validate.tsv"
     script:
         "../scripts/validate.py"
