@@ -234,15 +234,9 @@ def test_first_difference_one_way_matches_statsmodels(raw: pd.DataFrame) -> None
     )
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason=(
-        "estimate.py _model (first_difference): FirstDifferenceOLS gets "
-        "dummies.iloc[:, 1:], dropping the second period's dummy on top of the first (already dropped by drop_first); this "
-        "forces the second period's effect to equal the first's instead of estimating it"
-    ),
-)
 def test_first_difference_two_way_matches_statsmodels(raw: pd.DataFrame) -> None:
+    # Guards against dropping a second period dummy in the differenced equation
+    # (it would force the second period's effect to equal the first's).
     fit = Fitted(raw, period_effects=True)
     fd = fit.models["first_difference"]
     diffs = _consecutive_differences(fit.panel)
@@ -258,14 +252,6 @@ def test_first_difference_two_way_matches_statsmodels(raw: pd.DataFrame) -> None
     )
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason=(
-        "estimate.py _transformed (first_difference branch) differences rows across "
-        "gaps, but linearmodels' FirstDifferenceOLS does not; a regressor that changes only "
-        "across a gap is kept and the fit fails with numpy LinAlgError 'Singular matrix'"
-    ),
-)
 def test_first_difference_leaves_out_regressor_changing_only_across_gaps(
     raw: pd.DataFrame,
 ) -> None:
@@ -356,15 +342,6 @@ def test_hausman_matches_hand_computation(raw: pd.DataFrame, period_effects: boo
     assert test.p_value < 0.01
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason=(
-        "compare.py hausman: when V_FE - V_RE is indefinite, the statistic uses "
-        "np.linalg.pinv(v), which also inverts the negative eigenvalue (here it adds -1.33), "
-        "while df counts only the positive eigenvalues (1, not the rank 2); statistic and df "
-        "describe different quadratic forms"
-    ),
-)
 def test_hausman_with_indefinite_covariance_difference_is_consistent(fitted: Fitted) -> None:
     # With z in the model (kept by random effects, absorbed by fixed effects) the
     # covariance difference of x1, x2 has one negative eigenvalue on this sample.

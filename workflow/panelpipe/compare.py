@@ -7,15 +7,24 @@ tuple and never NaN without a reason.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+import pandas as pd
 from scipy import stats
 
-from .estimate import ModelResult
+from .estimate import MEAN_PREFIX, Design, ModelResult
 
-__all__ = ["TestResult", "hausman"]
+__all__ = [
+    "TestResult",
+    "breusch_pagan_lm",
+    "hausman",
+    "mundlak_test",
+    "run_comparisons",
+    "unit_effects_f",
+]
 
 
 @dataclass(frozen=True)
@@ -54,8 +63,9 @@ def hausman(fe: ModelResult, re: ModelResult) -> TestResult:
     -----
     :math:`H = (b_{FE}-b_{RE})'[V_{FE}-V_{RE}]^{-1}(b_{FE}-b_{RE}) \\sim \\chi^2_k`
     under the null that the unit effects are uncorrelated with the regressors
-    (Hausman 1978). When :math:`V_{FE}-V_{RE}` is not positive definite, a
-    Moore–Penrose inverse is used and the degrees of freedom are its rank.
+    (Hausman 1978). When :math:`V_{FE}-V_{RE}` is not positive definite, the
+    generalised inverse keeps its positive eigenvalues only, and the degrees of
+    freedom are their number.
     """
     name = "Hausman (classical)"
     null = "unit effects are uncorrelated with the regressors (random effects consistent)"
@@ -69,26 +79,139 @@ def hausman(fe: ModelResult, re: ModelResult) -> TestResult:
         fe.inference["classical"].cov.loc[common, common]
         - re.inference["classical"].cov.loc[common, common]
     ).to_numpy()
-    eig = np.linalg.eigvalsh(v)
+    eig, vectors = np.linalg.eigh(v)
     tol = max(eig.max(initial=0.0), 1e-300) * len(common) * 1e-10
+    positive = eig > tol
     note = ""
-    if eig.min() > tol:
+    if positive.all():
         stat = float(diff @ np.linalg.solve(v, diff))
         df = len(common)
     else:
-        rank = int((eig > tol).sum())
-        if rank == 0:
+        df = int(positive.sum())
+        if df == 0:
             return TestResult(
                 name,
                 null,
                 invalid_reason="the covariance difference has no positive eigenvalue, so the "
                 "classical test is undefined here; rely on the cluster-robust comparison",
             )
-        stat = float(diff @ np.linalg.pinv(v, rcond=1e-10, hermitian=True) @ diff)
-        df = rank
+        # Generalised inverse on the positive part: directions with a non-positive
+        # variance difference carry no usable information (Hausman 1978).
+        proj = vectors[:, positive].T @ diff
+        stat = float(np.sum(proj**2 / eig[positive]))
         note = (
-            f"the covariance difference is not positive definite ({len(common) - rank} "
-            f"non-positive eigenvalue(s)); a generalised inverse with df = rank = {rank} "
-            "was used"
+            f"the covariance difference is not positive definite ({len(common) - df} "
+            f"non-positive eigenvalue(s)); a generalised inverse on its positive part was "
+            f"used, with df = {df}"
         )
     return TestResult(name, null, stat, df, float(stats.chi2.sf(stat, df)), note)
+
+
+def mundlak_test(design: Design, fe: ModelResult, cre: ModelResult | None = None) -> TestResult:
+    """Cluster-robust Hausman test via the Mundlak device.
+
+    Adds the unit means of the time-varying regressors to the random-effects
+    model and tests that their coefficients are jointly zero with a
+    cluster-robust (CR1) Wald statistic.
+
+    Notes
+    -----
+    :math:`y_{it} = x_{it}'\\beta + \\bar x_i'\\gamma + c_i + u_{it}`; under the
+    null :math:`\\gamma = 0` random effects are consistent. With the
+    cluster-robust covariance :math:`W = \\hat\\gamma' \\hat V_\\gamma^{-1} \\hat\\gamma
+    \\sim \\chi^2_q` remains valid under heteroskedasticity and serial
+    correlation (Mundlak 1978; Wooldridge 2010, §10.7.3). Reuses the fitted
+    correlated random effects model when it was estimated with clustered errors.
+    """
+    name = "Hausman (cluster-robust, Mundlak)"
+    null = "the unit means of the regressors add nothing (random effects consistent)"
+    varying = list(fe.terms)
+    if not varying:
+        return TestResult(name, null, invalid_reason="no time-varying regressor to test")
+    if cre is not None and "cluster" in cre.inference and set(cre.terms) >= set(varying):
+        params, cov = cre.params, cre.inference["cluster"].cov
+    else:
+        from .estimate import fit_mundlak  # the model is built where the estimators are
+
+        params, cov = fit_mundlak(design, varying)
+    means = [f"{MEAN_PREFIX}{t}" for t in varying if f"{MEAN_PREFIX}{t}" in params.index]
+    if not means:
+        return TestResult(name, null, invalid_reason="no unit mean could be estimated")
+    g = params[means].to_numpy()
+    v = cov.loc[means, means].to_numpy()
+    try:
+        stat = float(g @ np.linalg.solve(v, g))
+    except np.linalg.LinAlgError:
+        return TestResult(name, null, invalid_reason="the covariance of the unit means is singular")
+    df = len(means)
+    clusters = int(design.clusters.nunique().min())
+    return TestResult(
+        name,
+        null,
+        stat,
+        df,
+        float(stats.chi2.sf(stat, df)),
+        f"Wald test of {df} unit-mean coefficient(s), CR1 cluster-robust covariance with "
+        f"{clusters} clusters; valid under heteroskedastic and serially correlated errors.",
+    )
+
+
+def breusch_pagan_lm(design: Design) -> TestResult:
+    """Breusch–Pagan LM test for random unit effects (unbalanced form).
+
+    Notes
+    -----
+    With pooled OLS residuals :math:`e_{it}` (intercept, regressors and, when
+    configured, period dummies), :math:`A = \\sum_i (\\sum_t e_{it})^2 / \\sum e_{it}^2 - 1`
+    and :math:`LM = n^2 A^2 / (2(\\sum_i T_i^2 - n)) \\sim \\chi^2_1` under the
+    null of no unit effect (Breusch & Pagan 1980; unbalanced form of Baltagi &
+    Li 1990, which reduces to :math:`NT A^2/(2(T-1))` when balanced).
+    """
+    name = "Breusch–Pagan LM (random unit effects)"
+    null = "no unit effects: the variance of the unit effect is zero"
+    x = np.column_stack(
+        [np.ones(design.nobs), design.x.to_numpy(), design.period_dummies.to_numpy()]
+    )
+    y = design.y.to_numpy()
+    coef, *_ = np.linalg.lstsq(x, y, rcond=None)
+    e = y - x @ coef
+    unit = pd.factorize(design.units)[0]
+    sums = np.bincount(unit, weights=e)
+    counts = np.bincount(unit)
+    n = len(e)
+    denom = 2.0 * (np.sum(counts.astype(float) ** 2) - n)
+    if denom <= 0:
+        return TestResult(name, null, invalid_reason="every unit is observed once")
+    a = np.sum(sums**2) / np.sum(e**2) - 1.0
+    stat = float(n**2 * a**2 / denom)
+    return TestResult(name, null, stat, 1, float(stats.chi2.sf(stat, 1)))
+
+
+def unit_effects_f(fe: ModelResult) -> TestResult:
+    """F test that all unit effects are zero (poolability), from the within fit."""
+    name = "F test of unit effects"
+    null = "all unit effects are zero (pooled OLS adequate)"
+    st = fe.statistics
+    if "f_unit_effects" not in st:
+        return TestResult(name, null, invalid_reason="the fixed-effects fit gave no F test")
+    return TestResult(
+        name,
+        null,
+        float(st["f_unit_effects"]),
+        int(st["f_unit_effects_df1"]),
+        float(st["f_unit_effects_p"]),
+        f"F({int(st['f_unit_effects_df1'])}, {int(st['f_unit_effects_df2'])}), classical.",
+    )
+
+
+def run_comparisons(design: Design, models: Mapping[str, ModelResult]) -> dict[str, TestResult]:
+    """Every comparison the fitted estimators allow, keyed as in results.json."""
+    tests: dict[str, TestResult] = {}
+    fe, re = models.get("fixed_effects"), models.get("random_effects")
+    if fe is not None and re is not None:
+        tests["hausman"] = hausman(fe, re)
+    if fe is not None:
+        tests["hausman_robust"] = mundlak_test(design, fe, models.get("correlated_random_effects"))
+        tests["unit_effects_f"] = unit_effects_f(fe)
+    tests["breusch_pagan"] = breusch_pagan_lm(design)
+    return tests

@@ -10,7 +10,7 @@ from __future__ import annotations
 import copy
 import glob
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -49,6 +49,7 @@ class AnalysisSettings:
     inference: tuple[str, ...]
     level: float
     gates: Mapping[str, Any]
+    bootstrap: Mapping[str, Any] = field(default_factory=dict)
 
     @property
     def columns(self) -> tuple[str, ...]:
@@ -69,6 +70,7 @@ class AnalysisSettings:
             "inference": list(self.inference),
             "level": self.level,
             "gates": dict(self.gates),
+            "bootstrap": dict(self.bootstrap),
         }
 
 
@@ -202,6 +204,7 @@ def analysis_settings(config: Mapping[str, Any], name: str) -> AnalysisSettings:
         inference=tuple(a["inference"]),
         level=float(a["level"]),
         gates=dict(a["gates"]),
+        bootstrap=dict(a.get("bootstrap") or {}),
     )
 
 

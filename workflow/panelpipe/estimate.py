@@ -23,17 +23,21 @@ from linearmodels.panel import (
 )
 from scipy import stats
 
+from .bootstrap import wild_cluster_bootstrap
 from .config import AnalysisSettings
 from .findings import Finding
+from .validate import FEW_CLUSTERS
 
 __all__ = [
     "ESTIMATOR_LABELS",
     "INFERENCE_LABELS",
     "INTERCEPT",
+    "MEAN_PREFIX",
     "Design",
     "InferenceResult",
     "ModelResult",
     "estimate_all",
+    "fit_mundlak",
     "make_design",
 ]
 
@@ -53,10 +57,11 @@ INFERENCE_LABELS = {
     "robust": "heteroskedasticity-robust",
     "cluster": "clustered",
     "driscoll_kraay": "Driscoll–Kraay",
+    "wild_bootstrap": "wild cluster bootstrap",
 }
 
 _PERIOD_PREFIX = "_period_"
-_MEAN_PREFIX = "_unit_mean_"
+MEAN_PREFIX = "_unit_mean_"
 
 
 @dataclass(frozen=True)
@@ -66,7 +71,7 @@ class Design:
     y: pd.Series
     x: pd.DataFrame
     period_dummies: pd.DataFrame
-    clusters: pd.Series
+    clusters: pd.DataFrame
     settings: AnalysisSettings
 
     @property
@@ -142,14 +147,16 @@ class ModelResult:
 
     def to_dict(self) -> dict[str, Any]:
         """The ``models.<key>`` entry of results.json (plus extra detail)."""
-        shown = [t for t in self.params.index if not t.startswith(("_period_", _MEAN_PREFIX))]
+        shown = [t for t in self.params.index if not t.startswith(("_period_", MEAN_PREFIX))]
         return {
             "label": self.label,
             "nobs": self.nobs,
             "units": self.units,
             "periods": self.periods,
             "params": _floats(self.params[shown]),
-            "std_errors": {k: _floats(v.std_errors[shown]) for k, v in self.inference.items()},
+            "std_errors": {
+                k: _floats(v.std_errors.reindex(shown).dropna()) for k, v in self.inference.items()
+            },
             "headline_inference": self.headline_inference,
             "terms": list(self.terms),
             "omitted": dict(self.omitted),
@@ -188,7 +195,7 @@ def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design
     s = settings
     cols = [s.outcome, *s.regressors]
     keep = panel[cols].notna().all(axis=1)
-    data = panel.loc[keep]
+    data = panel.loc[keep].sort_values([s.unit, s.period], kind="stable")
     index = pd.MultiIndex.from_arrays(
         [data[s.unit].astype(str).to_numpy(), data[s.period].to_numpy()], names=[s.unit, s.period]
     )
@@ -204,7 +211,9 @@ def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design
         dummies.index = index
     else:
         dummies = pd.DataFrame(index=index)
-    clusters = pd.Series(data[s.cluster_by[0]].astype(str).to_numpy(), index=index, name="cluster")
+    clusters = pd.DataFrame(
+        {c: pd.factorize(data[c].astype(str).to_numpy())[0] for c in s.cluster_by}, index=index
+    )
     findings: list[Finding] = []
     return Design(y, x, dummies, clusters, s), findings
 
@@ -231,10 +240,7 @@ def _transformed(design: Design, key: str) -> np.ndarray:
         means = _unit_means(x, unit)
         return _demean(means, np.zeros(len(means), dtype=np.int64))
     if key == "first_difference":
-        order = np.lexsort((design.periods.to_numpy(), unit))
-        xs, us = x[order], unit[order]
-        diff = xs[1:] - xs[:-1]
-        diff = diff[us[1:] == us[:-1]]
+        diff = first_differences(x, design)
         return _demean(diff, np.zeros(len(diff), dtype=np.int64))
     if key == "fixed_effects":
         out = _demean(x, unit)
@@ -247,6 +253,25 @@ def _transformed(design: Design, key: str) -> np.ndarray:
         return out
     # pooled, random effects and the Mundlak device keep unit-level variation
     return _demean(x, period if two_way else np.zeros(len(x), dtype=np.int64))
+
+
+def first_difference_rows(design: Design) -> np.ndarray:
+    """Positions of rows whose previous period is observed for the same unit.
+
+    A gap breaks the chain: the difference across a missing period is not
+    formed, as linearmodels' first-difference estimator does.
+    """
+    unit = pd.factorize(design.units)[0]
+    periods = np.sort(design.periods.unique())
+    pos = np.searchsorted(periods, design.periods.to_numpy())
+    ok = (unit[1:] == unit[:-1]) & (pos[1:] == pos[:-1] + 1)
+    return np.flatnonzero(ok) + 1
+
+
+def first_differences(values: np.ndarray, design: Design) -> np.ndarray:
+    """Within-unit differences over consecutive observed periods (rows sorted)."""
+    rows = first_difference_rows(design)
+    return values[rows] - values[rows - 1]
 
 
 def _unit_means(x: np.ndarray, unit: np.ndarray) -> np.ndarray:
@@ -306,8 +331,12 @@ def _fit_kwargs(key: str, design: Design, estimator: str) -> dict[str, Any]:
     if key == "robust":
         return {"cov_type": "robust", "debiased": True}
     if key == "cluster":
-        codes = pd.DataFrame({"cluster": pd.factorize(design.clusters)[0]}, index=design.y.index)
-        return {"cov_type": "clustered", "debiased": True, "group_debias": True, "clusters": codes}
+        return {
+            "cov_type": "clustered",
+            "debiased": True,
+            "group_debias": True,
+            "clusters": design.clusters,
+        }
     if key == "driscoll_kraay":
         return {
             "cov_type": "kernel",
@@ -316,6 +345,23 @@ def _fit_kwargs(key: str, design: Design, estimator: str) -> dict[str, Any]:
             "bandwidth": dk_bandwidth(design),
         }
     raise ValueError(f"unknown inference {key!r}")
+
+
+def cluster_count(design: Design) -> int:
+    """Clusters G; with two-way clustering the smaller of the two counts.
+
+    Common practice (Cameron, Gelbach & Miller 2011): small-sample factors and
+    the t reference distribution use the dimension with fewer clusters.
+    """
+    return int(design.clusters.nunique().min())
+
+
+def _nearest_psd(cov: pd.DataFrame) -> tuple[pd.DataFrame, bool]:
+    values, vectors = np.linalg.eigh(cov.to_numpy())
+    if values.min() >= -1e-12 * max(abs(values.max()), 1e-300):
+        return cov, False
+    fixed = (vectors * np.clip(values, 0.0, None)) @ vectors.T
+    return pd.DataFrame(fixed, index=cov.index, columns=cov.columns), True
 
 
 def dk_bandwidth(design: Design) -> float:
@@ -341,15 +387,24 @@ def _model(estimator: str, design: Design, terms: list[str]) -> Any:
     if estimator == "random_effects":
         return RandomEffects(y, pd.concat([const, x, dummies], axis=1))
     if estimator == "first_difference":
-        return FirstDifferenceOLS(y, pd.concat([x, dummies.iloc[:, 1:]], axis=1))
+        return FirstDifferenceOLS(y, pd.concat([x, dummies], axis=1))
     if estimator == "between":
         return BetweenOLS(y, pd.concat([const, x], axis=1))
     if estimator == "correlated_random_effects":
         varying = [t for t in terms if not _time_invariant(design, list(design.x.columns).index(t))]
         means = design.x[varying].groupby(level=0).transform("mean")
-        means.columns = [f"{_MEAN_PREFIX}{c}" for c in varying]
+        means.columns = [f"{MEAN_PREFIX}{c}" for c in varying]
         return RandomEffects(y, pd.concat([const, x, dummies, means], axis=1))
     raise ValueError(f"unknown estimator {estimator!r}")
+
+
+def fit_mundlak(design: Design, varying: list[str]) -> tuple[pd.Series, pd.DataFrame]:
+    """Random effects with unit means of ``varying`` added, CR1 clustered covariance."""
+    model = _model("correlated_random_effects", design, varying)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = model.fit(**_fit_kwargs("cluster", design, "correlated_random_effects"))
+    return res.params, res.cov
 
 
 def _reference(key: str, res: Any, design: Design) -> tuple[str, float]:
@@ -358,8 +413,8 @@ def _reference(key: str, res: Any, design: Design) -> tuple[str, float]:
     Common practice, no single source: t(G-1) for clustered errors, t(T-1) for
     Driscoll-Kraay, t(residual df) otherwise.
     """
-    if key == "cluster":
-        g = design.clusters.nunique()
+    if key in {"cluster", "wild_bootstrap"}:
+        g = cluster_count(design)
         return f"t({g - 1})", float(g - 1)
     if key == "driscoll_kraay":
         t = design.periods.nunique()
@@ -374,7 +429,7 @@ def _inference(key: str, res: Any, design: Design, level: float) -> InferenceRes
     n = int(res.nobs)
     note = ""
     if key == "cluster":
-        g = design.clusters.nunique()
+        g = cluster_count(design)
         k = len(params)
         note = (
             f"CR1 small-sample factor G/(G−1)·(N−1)/(N−K) with G={g}, N={n}, K={k} "
@@ -390,12 +445,105 @@ def _inference(key: str, res: Any, design: Design, level: float) -> InferenceRes
         note = f"Bartlett kernel, bandwidth {dk_bandwidth(design):.0f} period(s), T={t}."
         if t < 20:
             note += " With fewer than about 20 periods these standard errors are imprecise."
+    if key == "cluster" and design.clusters.shape[1] == 2:
+        cov, fixed = _nearest_psd(cov)
+        note += (
+            f" Two-way clustering by {' and '.join(design.clusters.columns)} (Cameron, Gelbach "
+            "& Miller 2011); G is the smaller cluster count."
+        )
+        if fixed:
+            note += (
+                " The two-way covariance was not positive semi-definite; its negative "
+                "eigenvalues were set to zero, as Cameron, Gelbach & Miller (2011) suggest."
+            )
     se = pd.Series(np.sqrt(np.diag(cov)), index=params.index)
     name, df = _reference(key, res, design)
     tstat = params / se
     p = pd.Series(2 * stats.t.sf(np.abs(tstat), df), index=params.index)
     crit = stats.t.ppf(0.5 + level / 2, df)
     return InferenceResult(key, se, cov, p, params - crit * se, params + crit * se, name, note)
+
+
+def _bootstrap_inputs(
+    estimator: str, design: Design, model: Any, res: Any
+) -> tuple[np.ndarray, np.ndarray, list[str], np.ndarray] | None:
+    """The regression the wild bootstrap resamples, as the estimator transforms it.
+
+    Fixed effects: the within transformation (unit effects nested in the
+    clusters, so the restricted fit on demeaned data is valid); first
+    differences: the differenced data; random effects: the quasi-demeaned data
+    with the estimated theta. Between has one row per unit and is not resampled.
+    """
+    if estimator == "between":
+        return None
+    y = model.dependent.dataframe.to_numpy()[:, 0]
+    x = model.exog.dataframe
+    names = [str(c) for c in x.columns]
+    xv = x.to_numpy()
+    clusters = design.clusters.iloc[:, 0].to_numpy()
+    unit = pd.factorize(design.units)[0]
+    if estimator == "fixed_effects":
+        return _demean(y[:, None], unit)[:, 0], _demean(xv, unit), names, clusters
+    if estimator == "first_difference":
+        rows = first_difference_rows(design)
+        return y[rows] - y[rows - 1], xv[rows] - xv[rows - 1], names, clusters[rows]
+    if estimator in {"random_effects", "correlated_random_effects"}:
+        theta = res.theta.iloc[:, 0].reindex(design.units).to_numpy()
+        counts = np.bincount(unit)
+        ybar = np.bincount(unit, weights=y) / counts
+        xbar = _unit_means(xv, unit)
+        yq = y - theta * ybar[unit]
+        xq = xv - theta[:, None] * xbar[unit]
+        return yq, xq, names, clusters
+    return y, xv, names, clusters
+
+
+def _wild_bootstrap(
+    estimator: str, design: Design, model: Any, res: Any, terms: list[str], level: float
+) -> InferenceResult | None:
+    data = _bootstrap_inputs(estimator, design, model, res)
+    if data is None:
+        return None
+    y, x, names, clusters = data
+    opts = design.settings.bootstrap
+    se, p, lo, hi = {}, {}, {}, {}
+    result = None
+    for term in terms:
+        result = wild_cluster_bootstrap(
+            y,
+            x,
+            clusters,
+            term_index=names.index(term),
+            term=term,
+            draws=int(opts.get("draws", 9999)),
+            weights=str(opts.get("weights", "auto")),
+            level=level,
+            seed=int(opts.get("seed", 20261202)),
+        )
+        se[term] = abs(result.estimate / result.t_stat) if result.t_stat else np.nan
+        p[term], lo[term], hi[term] = result.p_value, result.ci_low, result.ci_high
+    assert result is not None
+    idx = pd.Index(terms)
+    se_s = pd.Series(se).reindex(idx)
+    cov = pd.DataFrame(np.diag(se_s.to_numpy() ** 2), index=idx, columns=idx)
+    enumerated = " (all sign vectors enumerated)" if result.enumerated else ""
+    note = (
+        f"Restricted wild cluster bootstrap-t, {result.draws} draws{enumerated}, "
+        f"{result.weights} weights, seed {result.seed}, {result.clusters} clusters in "
+        f"{design.clusters.columns[0]!r}; p-values and intervals by test inversion "
+        "(Cameron, Gelbach & Miller 2008; Roodman et al. 2019). The standard error shown is "
+        "the CR1 one the bootstrap t-statistic uses."
+    )
+    return InferenceResult(
+        "wild_bootstrap",
+        se_s,
+        cov,
+        pd.Series(p).reindex(idx),
+        pd.Series(lo).reindex(idx),
+        pd.Series(hi).reindex(idx),
+        "bootstrap",
+        note,
+    )
 
 
 def _fit_one(
@@ -410,14 +558,26 @@ def _fit_one(
     results: dict[str, InferenceResult] = {}
     first: Any = None
     for key in inference:
-        if key == "driscoll_kraay" and estimator == "between":
-            continue  # unit means have no time dimension left
+        if key == "wild_bootstrap" or (key == "driscoll_kraay" and estimator == "between"):
+            continue  # the bootstrap follows; unit means have no time dimension left
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             res = model.fit(**_fit_kwargs(key, design, estimator))
         first = first if first is not None else res
         results[key] = _inference(key, res, design, level)
-    headline = "cluster" if "cluster" in results else next(iter(results))
+    if first is None:  # only the bootstrap was asked for: a classical fit gives the point estimates
+        first = model.fit(**_fit_kwargs("classical", design, estimator))
+    if "wild_bootstrap" in inference:
+        boot = _wild_bootstrap(estimator, design, model, first, terms, level)
+        if boot is not None:
+            results["wild_bootstrap"] = boot
+    few = cluster_count(design) < FEW_CLUSTERS
+    if few and "wild_bootstrap" in results:
+        headline = "wild_bootstrap"
+    elif "cluster" in results:
+        headline = "cluster"
+    else:
+        headline = next(iter(results))
     statistics: dict[str, float] = {"r2": float(first.rsquared)}
     if estimator in {"random_effects", "correlated_random_effects"}:
         vd = first.variance_decomposition
@@ -426,6 +586,11 @@ def _fit_one(
         statistics["theta_median"] = float(np.median(np.asarray(first.theta)))
     if estimator == "fixed_effects":
         statistics["r2_within"] = float(first.rsquared_within)
+        pooled = first.f_pooled  # classical F test that all unit effects are zero
+        statistics["f_unit_effects"] = float(pooled.stat)
+        statistics["f_unit_effects_p"] = float(pooled.pval)
+        statistics["f_unit_effects_df1"] = float(pooled.df)
+        statistics["f_unit_effects_df2"] = float(pooled.df_denom)
     units = first.entity_info["total"] if estimator != "between" else len(first.params)
     return ModelResult(
         key=estimator,
@@ -466,6 +631,19 @@ def estimate_all(
     s = design.settings
     models: dict[str, ModelResult] = {}
     findings: list[Finding] = []
+    inference = s.inference
+    g = cluster_count(design)
+    if g < FEW_CLUSTERS and "cluster" in inference and "wild_bootstrap" not in inference:
+        inference = (*inference, "wild_bootstrap")
+        findings.append(
+            Finding(
+                "wild_bootstrap_added",
+                "info",
+                f"Only {g} clusters: the wild cluster bootstrap was added beside the clustered "
+                f"standard errors and is the headline inference (below about {FEW_CLUSTERS} "
+                "clusters the cluster-robust t-test rejects too often).",
+            )
+        )
     for estimator in s.estimators:
         if progress:
             progress(estimator)
@@ -490,5 +668,5 @@ def estimate_all(
                 )
             )
             continue
-        models[estimator] = _fit_one(estimator, design, terms, omitted, s.inference, s.level)
+        models[estimator] = _fit_one(estimator, design, terms, omitted, inference, s.level)
     return models, findings

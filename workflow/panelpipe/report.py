@@ -46,7 +46,7 @@ def estimates_table(models: Mapping[str, ModelResult]) -> pd.DataFrame:
     for key, m in models.items():
         terms = [t for t in m.params.index if t in m.terms or t == INTERCEPT]
         for inf_key, inf in m.inference.items():
-            for t in terms:
+            for t in (t for t in terms if t in inf.std_errors.index):
                 rows.append(
                     (
                         key,
@@ -65,24 +65,58 @@ def estimates_table(models: Mapping[str, ModelResult]) -> pd.DataFrame:
 def recommend(
     models: Mapping[str, ModelResult], tests: Mapping[str, TestResult], alpha: float = 0.05
 ) -> tuple[str, list[str]]:
-    """Which estimator the data support, with the reasons in plain words."""
+    """Which estimator the data support, with the reasons in plain words.
+
+    The cluster-robust (Mundlak) comparison decides when it is available: the
+    classical Hausman test assumes homoskedastic, serially uncorrelated errors,
+    which panels rarely have. A test result is quoted with its p-value.
+    """
+
+    def rejects(key: str) -> bool | None:
+        t = tests.get(key)
+        if t is None or not t.valid or t.p_value is None:
+            return None
+        return t.p_value < alpha
+
+    def p_of(key: str) -> str:
+        p = tests[key].p_value
+        return f"p = {p:.3g}" if p is not None and p >= 0.001 else "p < 0.001"
+
     reasons: list[str] = []
-    haus = tests.get("hausman")
-    if "fixed_effects" in models and "random_effects" in models and haus and haus.valid:
-        assert haus.p_value is not None
-        if haus.p_value < alpha:
+    robust, classical = rejects("hausman_robust"), rejects("hausman")
+    decider = "hausman_robust" if robust is not None else "hausman"
+    verdict = robust if robust is not None else classical
+    if "fixed_effects" in models and verdict is not None:
+        label = "cluster-robust Hausman test" if decider == "hausman_robust" else "Hausman test"
+        if verdict:
             reasons.append(
-                f"The Hausman test rejects random effects (p = {haus.p_value:.3g}): the unit "
-                "effects appear correlated with the regressors, so random effects and pooled "
-                "OLS are likely biased."
+                f"The {label} rejects random effects ({p_of(decider)}): the unit effects "
+                "appear correlated with the regressors, so random effects and pooled OLS are "
+                "likely biased and fixed effects are preferred."
             )
-            return "fixed_effects", reasons
-        reasons.append(
-            f"The Hausman test does not reject random effects (p = {haus.p_value:.3g}); random "
-            "effects are then more precise. The classical test assumes homoskedastic, serially "
-            "uncorrelated errors; check the audit before relying on it."
-        )
-        return "random_effects", reasons
+            choice = "fixed_effects"
+        else:
+            reasons.append(
+                f"The {label} does not reject random effects ({p_of(decider)}): fixed and "
+                "random effects agree within sampling noise."
+            )
+            choice = "random_effects" if "random_effects" in models else "fixed_effects"
+            if choice == "random_effects":
+                reasons.append("Random effects are then more precise and are preferred.")
+            lm, f = rejects("breusch_pagan"), rejects("unit_effects_f")
+            if lm is False and f is False and "pooled_ols" in models:
+                reasons.append(
+                    f"Neither the Breusch–Pagan test ({p_of('breusch_pagan')}) nor the F test "
+                    f"({p_of('unit_effects_f')}) finds unit effects, so pooled OLS is adequate."
+                )
+                choice = "pooled_ols"
+        if decider == "hausman_robust" and classical is not None and classical != robust:
+            reasons.append(
+                f"The classical Hausman test disagrees ({p_of('hausman')}); trust the "
+                "cluster-robust one, which stays valid when errors are heteroskedastic or "
+                "serially correlated."
+            )
+        return choice, reasons
     for key in (
         "fixed_effects",
         "first_difference",

@@ -20,7 +20,7 @@ import pandas as pd
 import yaml
 
 from . import __version__
-from .compare import TestResult, hausman
+from .compare import TestResult, run_comparisons
 from .config import AnalysisSettings, analysis_settings, resolve_sources
 from .estimate import INTERCEPT, ModelResult, estimate_all, make_design
 from .findings import Finding, PanelpipeError
@@ -122,12 +122,11 @@ def _load_models(path: str) -> tuple[dict[str, ModelResult], list[Finding]]:
     return models, findings
 
 
-def compare_step(settings: AnalysisSettings, models_in: str, tests_out: str) -> None:
+def compare_step(settings: AnalysisSettings, panel_in: str, models_in: str, tests_out: str) -> None:
     """Run the comparison tests between the fitted estimators."""
     models, _ = _load_models(models_in)
-    tests: dict[str, TestResult] = {}
-    if "fixed_effects" in models and "random_effects" in models:
-        tests["hausman"] = hausman(models["fixed_effects"], models["random_effects"])
+    design, _ = make_design(pd.read_parquet(panel_in), settings)
+    tests = run_comparisons(design, models)
     _write_json(tests_out, {k: {**t.to_dict(), "valid": t.valid} for k, t in tests.items()})
 
 

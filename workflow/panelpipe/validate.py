@@ -293,20 +293,32 @@ def _check_regressors(panel: pd.DataFrame, s: AnalysisSettings, out: list[Findin
 
 
 def _check_clusters(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> None:
-    col = s.cluster_by[0]
-    sizes = panel.groupby(col, observed=True).size()
-    g = len(sizes)
-    if g < FEW_CLUSTERS and "cluster" in s.inference:
-        out.append(
-            Finding(
-                "few_clusters",
-                "warning",
-                f"only {g} clusters in {col!r} (smallest {int(sizes.min())} rows, largest "
-                f"{int(sizes.max())}); cluster-robust standard errors are unreliable below about "
-                f"{FEW_CLUSTERS} clusters.",
-                {"clusters": g},
+    for col in s.cluster_by:
+        sizes = panel.groupby(col, observed=True).size()
+        g = len(sizes)
+        least = int(s.gates.get("min_clusters", 2))
+        if g < least:
+            out.append(
+                Finding(
+                    "too_few_clusters",
+                    "error",
+                    f"cluster column {col!r} has {g} distinct value(s); at least {least} are "
+                    "needed (gate min_clusters; 2 at the very least, about 30 to be reliable). "
+                    "Choose another column in 'cluster_by' or lower the gate.",
+                    {"column": col, "clusters": g},
+                )
             )
-        )
+        elif g < FEW_CLUSTERS and {"cluster", "wild_bootstrap"} & set(s.inference):
+            out.append(
+                Finding(
+                    "few_clusters",
+                    "warning",
+                    f"only {g} clusters in {col!r} (smallest {int(sizes.min())} rows, largest "
+                    f"{int(sizes.max())}); cluster-robust standard errors are unreliable below "
+                    f"about {FEW_CLUSTERS} clusters, so the wild cluster bootstrap is reported.",
+                    {"column": col, "clusters": g},
+                )
+            )
 
 
 def validate_panel(raw: pd.DataFrame, settings: AnalysisSettings) -> ValidationResult:

@@ -1,5 +1,6 @@
 rule compare:
     input:
+        panel=run_path("work/panel.parquet"),
         models=run_path("work/models.json"),
     output:
         tests=run_path("work/tests.json"),
