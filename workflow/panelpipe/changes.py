@@ -8,14 +8,16 @@ from __future__ import annotations
 
 import json
 import math
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pandas as pd
 
 from .findings import PanelpipeError
 
-__all__ = ["compare_runs", "render_changes"]
+__all__ = ["compare_runs", "diff_runs", "history", "previous_run", "render_changes"]
 
 _SHOWN = 10
 
@@ -30,44 +32,53 @@ def _load(run_dir: Path) -> tuple[dict[str, Any], dict[str, Any], pd.DataFrame]:
     return doc, manifest, panel
 
 
-def compare_runs(run_a: Path, run_b: Path) -> dict[str, Any]:
-    """Changes from run A (earlier) to run B (later).
+def diff_runs(
+    doc_a: Mapping[str, Any],
+    panel_a: pd.DataFrame,
+    doc_b: Mapping[str, Any],
+    panel_b: pd.DataFrame,
+    settings: Mapping[str, Any],
+) -> dict[str, Any]:
+    """Changes from run A (earlier) to run B (later), from their results and panels.
 
-    A coefficient's move is compared with sqrt(se_A² + se_B²) under each run's
+    A coefficient's move is compared with sqrt(se_A² + se_B²) under run B's
     headline inference; this treats the two estimates as independent, which
     overstates the noise when the samples overlap, so a move flagged as larger
     than noise is a conservative signal (common practice, no source).
     """
-    doc_a, _, panel_a = _load(Path(run_a))
-    doc_b, man_b, panel_b = _load(Path(run_b))
-    s = man_b["settings"]
-    unit, period = s["unit"], s["period"]
+    unit, period = settings["unit"], settings["period"]
     value_cols = [
         c
-        for c in dict.fromkeys([s["outcome"], *s["regressors"]])
+        for c in dict.fromkeys([settings["outcome"], *settings["regressors"]])
         if c in panel_a.columns and c in panel_b.columns
     ]
     units_a, units_b = set(panel_a[unit]), set(panel_b[unit])
     periods_a, periods_b = set(panel_a[period]), set(panel_b[period])
-    merged = panel_a[[unit, period, *value_cols]].merge(
-        panel_b[[unit, period, *value_cols]], on=[unit, period], suffixes=("_a", "_b")
-    )
-    revisions = []
-    for col in value_cols:
-        a, b = merged[f"{col}_a"], merged[f"{col}_b"]
-        changed = ~((a == b) | (a.isna() & b.isna()))
-        for _, row in merged.loc[changed].iterrows():
-            old, new = row[f"{col}_a"], row[f"{col}_b"]
-            revisions.append(
-                {
-                    "unit": str(row[unit]),
-                    "period": str(row[period]),
-                    "column": col,
-                    "old": None if pd.isna(old) else float(old),
-                    "new": None if pd.isna(new) else float(new),
-                }
-            )
-    revisions.sort(key=lambda r: -abs((r["new"] or 0.0) - (r["old"] or 0.0)))
+    keys = [unit, period]
+    old = panel_a[[*keys, *value_cols]].melt(keys, var_name="column", value_name="old")
+    new = panel_b[[*keys, *value_cols]].melt(keys, var_name="column", value_name="new")
+    both = old.merge(new, on=[*keys, "column"])
+    same = (both["old"] == both["new"]) | (both["old"].isna() & both["new"].isna())
+    revised = both.loc[~same].copy()
+    revised["size"] = (revised["new"] - revised["old"]).abs().fillna(np.inf)
+    revised = revised.sort_values("size", ascending=False, kind="stable")
+    revisions = [
+        {
+            "unit": str(u),
+            "period": str(t),
+            "column": str(c),
+            "old": None if pd.isna(o) else float(o),
+            "new": None if pd.isna(n) else float(n),
+        }
+        for u, t, c, o, n in zip(
+            revised[unit].head(_SHOWN),
+            revised[period].head(_SHOWN),
+            revised["column"].head(_SHOWN),
+            revised["old"].head(_SHOWN),
+            revised["new"].head(_SHOWN),
+            strict=True,
+        )
+    ]
     moved = []
     for key, mb in doc_b["models"].items():
         ma = doc_a["models"].get(key)
@@ -80,7 +91,7 @@ def compare_runs(run_a: Path, run_b: Path) -> dict[str, Any]:
             va = ma["params"][term]
             se_a = ma["std_errors"].get(inf, {}).get(term)
             se_b = mb["std_errors"].get(inf, {}).get(term)
-            noise = math.sqrt(se_a**2 + se_b**2) if se_a is not None and se_b is not None else None
+            noise = math.hypot(se_a, se_b) if se_a is not None and se_b is not None else None
             z = (vb - va) / noise if noise else None
             moved.append(
                 {
@@ -110,11 +121,62 @@ def compare_runs(run_a: Path, run_b: Path) -> dict[str, Any]:
         "periods_gone": sorted(map(str, periods_a - periods_b)),
         "units_added": sorted(map(str, units_b - units_a)),
         "units_gone": sorted(map(str, units_a - units_b)),
-        "revised_cells": len(revisions),
-        "revisions": revisions[:_SHOWN],
+        "revised_cells": len(revised),
+        "revisions": revisions,
         "estimates": moved,
         "tests": tests,
     }
+
+
+def compare_runs(run_a: Path, run_b: Path) -> dict[str, Any]:
+    """Changes between two completed run folders (see `diff_runs`)."""
+    doc_a, _, panel_a = _load(Path(run_a))
+    doc_b, man_b, panel_b = _load(Path(run_b))
+    if doc_a["analysis"] != doc_b["analysis"]:
+        raise PanelpipeError(
+            f"{run_a} is analysis {doc_a['analysis']!r} but {run_b} is {doc_b['analysis']!r}; "
+            "compare two runs of the same analysis."
+        )
+    return diff_runs(doc_a, panel_a, doc_b, panel_b, man_b["settings"])
+
+
+def previous_run(analysis_dir: Path, current: str) -> Path | None:
+    """The newest completed run of an analysis other than ``current``, if any.
+
+    Runs are ordered by the creation time their manifest records.
+    """
+    best: tuple[str, Path] | None = None
+    for folder in Path(analysis_dir).iterdir() if Path(analysis_dir).is_dir() else ():
+        manifest = folder / "manifest.json"
+        if folder.name == current or not (folder / "results.json").is_file():
+            continue
+        try:
+            created = json.loads(manifest.read_text(encoding="utf-8"))["created"]
+        except (OSError, KeyError, ValueError):
+            continue
+        if best is None or created > best[0]:
+            best = (created, folder)
+    return best[1] if best else None
+
+
+def history(analysis_dir: Path) -> list[dict[str, Any]]:
+    """Every completed run of an analysis, oldest first: id, time, last period, params."""
+    runs = []
+    for folder in Path(analysis_dir).iterdir() if Path(analysis_dir).is_dir() else ():
+        try:
+            doc = json.loads((folder / "results.json").read_text(encoding="utf-8"))
+            created = json.loads((folder / "manifest.json").read_text(encoding="utf-8"))["created"]
+        except (OSError, KeyError, ValueError):
+            continue
+        runs.append(
+            {
+                "run_id": doc["run_id"],
+                "created": created,
+                "last_period": doc["data"].get("last_period"),
+                "models": doc["models"],
+            }
+        )
+    return sorted(runs, key=lambda r: r["created"])
 
 
 def render_changes(ch: dict[str, Any]) -> str:

@@ -24,7 +24,15 @@ from .compare import TestResult  # noqa: E402
 from .estimate import ESTIMATOR_LABELS, INFERENCE_LABELS, INTERCEPT, ModelResult  # noqa: E402
 from .findings import Finding  # noqa: E402
 
-__all__ = ["SCHEMA_VERSION", "estimates_table", "recommend", "render_html", "results_document"]
+__all__ = [
+    "SCHEMA_VERSION",
+    "estimates_table",
+    "history_figure",
+    "paper_tables",
+    "recommend",
+    "render_html",
+    "results_document",
+]
 
 SCHEMA_VERSION = 1
 
@@ -166,6 +174,49 @@ def results_document(
     }
 
 
+def term_label(term: str) -> str:
+    """How a term is shown to people."""
+    return "intercept" if term == INTERCEPT else term
+
+
+def paper_tables(
+    models: Mapping[str, ModelResult], regressors: Sequence[str], level: float
+) -> tuple[str, str]:
+    """The estimates table for papers: Markdown and LaTeX.
+
+    Estimators as columns, one row per term with the coefficient and, below it,
+    the interval under that estimator's headline inference.
+    """
+    terms = [
+        t
+        for t in (*regressors, INTERCEPT)
+        if any(t in m.terms or (t == INTERCEPT and t in m.params.index) for m in models.values())
+    ]
+    cells: dict[str, list[str]] = {}
+    for key, m in models.items():
+        inf = m.inference[m.headline_inference]
+        column = []
+        for t in terms:
+            if t in inf.std_errors.index and t in m.params.index:
+                column.append(f"{m.params[t]:.4f} [{inf.ci_low[t]:.4f}, {inf.ci_high[t]:.4f}]")
+            else:
+                column.append("")
+        cells[f"{ESTIMATOR_LABELS[key]} ({INFERENCE_LABELS[m.headline_inference]})"] = column
+    cells_n = {k: str(m.nobs) for k, m in zip(cells, models.values(), strict=True)}
+    frame = pd.DataFrame(cells, index=[term_label(t) for t in terms])
+    frame.loc["rows used"] = pd.Series(cells_n)
+    frame.index.name = "term"
+    caption = f"Coefficients with {level:.0%} intervals in brackets."
+    markdown = frame.to_markdown() + f"\n\n{caption}\n"
+    latex = (
+        frame.style.format(escape="latex")
+        .format_index(escape="latex", axis=0)
+        .format_index(escape="latex", axis=1)
+        .to_latex(hrules=True, caption=caption)
+    )
+    return markdown, latex
+
+
 # ---------------------------------------------------------------- figures
 
 _PALETTE = ["#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00"]  # Okabe-Ito
@@ -258,6 +309,30 @@ def variance_share_figure(panel: pd.DataFrame, unit: str, regressors: Sequence[s
     return _svg(fig)
 
 
+def history_figure(runs: Sequence[Mapping[str, Any]], model: str, term: str) -> str | None:
+    """The headline coefficient of ``model`` across runs, with headline intervals."""
+    points = []
+    for r in runs:
+        m = r["models"].get(model)
+        if not m or term not in m["params"]:
+            continue
+        se = m["std_errors"].get(m["headline_inference"], {}).get(term)
+        points.append((f"{r['run_id'][:8]}\n(to {r['last_period']})", m["params"][term], se))
+    if len(points) < 2:
+        return None
+    fig, ax = plt.subplots(figsize=(min(1.1 * len(points) + 2, 10), 2.8))
+    x = np.arange(len(points))
+    est = np.array([p[1] for p in points])
+    err = np.array([1.96 * p[2] if p[2] is not None else 0.0 for p in points])
+    ax.errorbar(x, est, yerr=err, fmt="o-", color=_PALETTE[0], capsize=3)
+    ax.set_xticks(x)
+    ax.set_xticklabels([p[0] for p in points], fontsize=7)
+    ax.set_ylabel(term, fontsize=8)
+    ax.axhline(0.0, color="#999999", lw=0.8, ls=":")
+    fig.tight_layout()
+    return _svg(fig)
+
+
 # ---------------------------------------------------------------- HTML
 
 
@@ -290,6 +365,7 @@ _ENV = jinja2.Environment(
 )
 _ENV.filters["num"] = _fmt
 _ENV.filters["pvalue"] = _pvalue
+_ENV.filters["term"] = term_label
 
 
 def render_html(context: Mapping[str, Any]) -> str:

@@ -20,6 +20,7 @@ import pandas as pd
 import yaml
 
 from . import __version__
+from .changes import diff_runs, history, previous_run
 from .compare import TestResult, run_comparisons
 from .config import AnalysisSettings, analysis_settings, resolve_sources
 from .estimate import INTERCEPT, ModelResult, estimate_all, make_design
@@ -28,6 +29,8 @@ from .ingest import read_panel
 from .report import (
     coefficient_figure,
     estimates_table,
+    history_figure,
+    paper_tables,
     presence_figure,
     recommend,
     render_html,
@@ -215,6 +218,26 @@ def report_step(
     table = estimates_table(models)
     created = dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat()
     run_dir = Path(outputs["html"]).parent
+    previous = previous_run(run_dir.parent, run)
+    changes = None
+    if previous is not None:
+        changes = diff_runs(
+            _read_json(previous / "results.json"),
+            pd.read_parquet(previous / "work" / "panel.parquet"),
+            doc,
+            panel,
+            settings.to_dict(),
+        )
+    doc["changes"] = changes
+    runs = [
+        *history(run_dir.parent),
+        {
+            "run_id": run,
+            "created": created,
+            "last_period": summary.get("last_period"),
+            "models": doc["models"],
+        },
+    ]
     manifest = {
         "analysis": settings.name,
         "run_id": run,
@@ -271,7 +294,9 @@ def report_step(
                 "coefficients": coefficient_figure(models, settings.regressors),
                 "presence": presence_figure(panel, settings.unit, settings.period),
                 "variance": variance_share_figure(panel, settings.unit, settings.regressors),
+                "history": history_figure(runs, recommended, focus),
             },
+            "changes": changes,
             "versions": manifest["versions"],
             "settings_yaml": yaml.safe_dump(
                 settings.to_dict(), sort_keys=False, allow_unicode=True
@@ -279,6 +304,9 @@ def report_step(
         }
     )
     atomic_write_text(Path(outputs["estimates"]), table.to_csv(index=False, lineterminator="\n"))
+    markdown, latex = paper_tables(models, settings.regressors, settings.level)
+    atomic_write_text(Path(outputs["markdown"]), markdown)
+    atomic_write_text(Path(outputs["latex"]), latex)
     _write_json(outputs["results"], doc)
     _write_json(outputs["manifest"], manifest)
     atomic_write_text(Path(outputs["html"]), html)

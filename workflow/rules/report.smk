@@ -10,6 +10,8 @@ rule report:
         results=protected(run_path("results.json")),
         estimates=protected(run_path("estimates.csv")),
         manifest=protected(run_path("manifest.json")),
+        markdown=protected(run_path("estimates.md")),
+        latex=protected(run_path("estimates.tex")),
     log:
         run_path("logs/report.log"),
     benchmark:

@@ -1,0 +1,1346 @@
+"""Diagnose: audit the fixed-effects estimate against the threats to internal validity.
+
+Every row of the audit table in METHODS.md becomes a `Diagnostic`: a status
+(``ok``, ``caution``, ``problem`` or ``not_run`` with the reason), the statistic
+and p-value where a test applies, the effect on the headline (focus) coefficient
+where one can be computed, and one plain sentence on what it means for the
+estimate. Every threshold is in `THRESHOLDS`.
+
+The audit fits nothing from scratch more often than it must. The within
+(unit-demeaned) data of the estimation sample are computed once; the RESET-type
+test and the one-way residuals add or drop columns of them. The lead and
+next-period-presence tests need a sub-sample, whose raw columns are demeaned
+again (O(NK)) because unit means depend on the rows kept. First differences are
+formed once and serve both the fixed-effects-versus-first-differences comparison
+and the serial-correlation test. Leave-one-cluster-out estimates come from
+cluster-level sums of the within data.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from types import MappingProxyType
+from typing import Any, Literal
+
+import numpy as np
+import numpy.typing as npt
+import pandas as pd
+import scipy.linalg
+from scipy import stats
+
+from .bootstrap import wild_cluster_bootstrap
+from .estimate import Design, ModelResult, _demean
+from .validate import FEW_CLUSTERS
+
+__all__ = ["DIAGNOSTIC_KEYS", "THRESHOLDS", "Diagnostic", "Status", "run_audit"]
+
+FloatArray = npt.NDArray[np.float64]
+IntArray = npt.NDArray[np.intp]
+
+Status = Literal["ok", "caution", "problem", "not_run"]
+
+DIAGNOSTIC_KEYS = (
+    "omitted_variables",
+    "strict_exogeneity",
+    "functional_form",
+    "measurement_error",
+    "attrition",
+    "serial_correlation",
+    "cross_sectional_dependence",
+    "heteroskedasticity",
+    "few_clusters",
+    "influential_clusters",
+)
+"""The keys of ``results.json['diagnostics']``, in the order of the audit table."""
+
+THRESHOLDS: Mapping[str, float] = MappingProxyType(
+    {
+        # Size of every test in the audit; a p-value below it flags the check.
+        "alpha": 0.05,
+        # Oster (2019): R_max = min(1, 1.3 * R-squared of the controlled regression).
+        "oster_rmax_multiplier": 1.3,
+        # Oster (2019): |delta| below 1 means unobservables less important than the
+        # observed controls could explain the estimate away.
+        "oster_delta": 1.0,
+        # Within-unit share of the focus regressor's variance below which
+        # measurement error is strongly amplified by fixed effects (Griliches &
+        # Hausman 1986). Judgement, no single source.
+        "within_share_low": 0.10,
+        # |z| of the fixed-effects minus first-difference estimate beyond which the
+        # two are said to diverge (two-sided 5% normal critical value).
+        "fe_fd_divergence_z": 1.96,
+        # Fewer clusters than this: cluster-robust inference is unreliable
+        # (common practice; the same constant as validation's warning).
+        "few_clusters": float(FEW_CLUSTERS),
+        # From few_clusters up to this count: still worth a bootstrap check.
+        "clusters_caution": 50.0,
+        # One cluster holding more than this share of the rows dominates the
+        # cluster-robust variance. Judgement, no single source.
+        "dominant_cluster_share": 0.20,
+        # Dropping one cluster moves the focus estimate by more than this many
+        # cluster-robust standard errors: the cluster is influential.
+        "influence_shift_se": 1.0,
+        # The jackknife (CV3) standard error exceeds the CR1 one by this factor.
+        "cv3_ratio": 1.5,
+        # Draws of the wild cluster bootstrap run by the few-clusters check.
+        "bootstrap_draws": 999.0,
+    }
+)
+"""Every threshold the audit uses, in one place (see the comments in the source)."""
+
+
+@dataclass(frozen=True)
+class Diagnostic:
+    """One check of the validity audit.
+
+    Parameters
+    ----------
+    key
+        One of `DIAGNOSTIC_KEYS`.
+    status
+        ``ok``, ``caution``, ``problem``, or ``not_run`` (then ``reason`` says why).
+    message
+        One plain sentence on what the result means for the estimate.
+    statistic, p_value, df
+        The test statistic, its p-value and (numerator) degrees of freedom, where
+        a test applies; ``details['reference']`` names the reference distribution.
+    effect
+        The effect on the headline estimate: a bound, a range, estimates under
+        alternatives, standard-error ratios.
+    details
+        Everything else computed on the way.
+    reason
+        Why the check did not run.
+    """
+
+    key: str
+    status: Status
+    message: str
+    statistic: float | None = None
+    p_value: float | None = None
+    df: float | None = None
+    effect: dict[str, Any] = field(default_factory=dict)
+    details: dict[str, Any] = field(default_factory=dict)
+    reason: str = ""
+
+    def to_dict(self) -> dict[str, Any]:
+        """The ``diagnostics.<key>`` entry of results.json (plain JSON values)."""
+        return {
+            "status": self.status,
+            "statistic": _plain(self.statistic),
+            "p_value": _plain(self.p_value),
+            "df": _plain(self.df),
+            "message": self.message,
+            "effect": _plain(self.effect),
+            "details": _plain(self.details),
+            "reason": self.reason,
+        }
+
+
+def _plain(value: Any) -> Any:
+    """Python scalars, lists and dicts only; NaN and infinities become None."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, list | tuple | np.ndarray):
+        return [_plain(v) for v in value]
+    if isinstance(value, bool | np.bool_):
+        return bool(value)
+    if isinstance(value, int | np.integer):
+        return int(value)
+    if isinstance(value, float | np.floating):
+        return float(value) if np.isfinite(value) else None
+    return value
+
+
+def _not_run(key: str, reason: str) -> Diagnostic:
+    return Diagnostic(key, "not_run", f"Not run: {reason}.", reason=reason)
+
+
+# ---------------------------------------------------------------- regression helpers
+
+
+@dataclass(frozen=True)
+class _Fit:
+    """Least squares with a CR1 cluster-robust covariance."""
+
+    coef: FloatArray
+    resid: FloatArray
+    cov: FloatArray
+    nobs: int
+    clusters: int
+
+    def se(self, j: int) -> float:
+        return float(np.sqrt(self.cov[j, j]))
+
+    def t_test(self, j: int, null: float = 0.0) -> tuple[float, float]:
+        """t statistic and two-sided p-value from t(G-1)."""
+        t = (float(self.coef[j]) - null) / self.se(j)
+        return t, float(2.0 * stats.t.sf(abs(t), self.clusters - 1))
+
+    def wald(self, cols: list[int]) -> tuple[float, float]:
+        """Wald F statistic that the coefficients ``cols`` are zero; p from F(q, G-1)."""
+        b = self.coef[cols]
+        v = self.cov[np.ix_(cols, cols)]
+        f = float(b @ np.linalg.solve(v, b)) / len(cols)
+        return f, float(stats.f.sf(f, len(cols), self.clusters - 1))
+
+
+def _group_sums(values: FloatArray, codes: IntArray, n: int) -> FloatArray:
+    """Column sums of ``values`` (rows x K) within each of ``n`` groups."""
+    return np.column_stack(
+        [np.bincount(codes, weights=values[:, j], minlength=n) for j in range(values.shape[1])]
+    ).reshape(n, values.shape[1])
+
+
+def _cluster_fit(y: FloatArray, X: FloatArray, clusters: IntArray) -> _Fit:
+    r"""OLS of ``y`` on ``X`` with the CR1 cluster-robust covariance.
+
+    Notes
+    -----
+    :math:`\hat V = c\,(X'X)^{-1}\left(\sum_g X_g'\hat u_g\hat u_g'X_g\right)(X'X)^{-1}`
+    with :math:`c = \frac{G}{G-1}\frac{N-1}{N-K}` (Liang & Zeger 1986; Cameron &
+    Miller 2015). Effects absorbed by demeaning within clusters are not counted
+    in K, as in the estimation stage.
+    """
+    codes, uniques = pd.factorize(clusters)
+    g = len(uniques)
+    n, k = X.shape
+    if g < 2 or n <= k:
+        raise np.linalg.LinAlgError(f"{n} rows, {k} columns and {g} cluster(s) are too few")
+    bread = np.linalg.inv(X.T @ X)
+    coef = bread @ (X.T @ y)
+    resid = y - X @ coef
+    scores = _group_sums(X * resid[:, None], codes.astype(np.intp), g)
+    factor = g / (g - 1) * (n - 1) / (n - k)
+    cov = factor * bread @ (scores.T @ scores) @ bread
+    return _Fit(coef, resid, cov, n, g)
+
+
+def _independent(base: FloatArray, extra: FloatArray) -> IntArray:
+    """Columns of ``extra`` that are linearly independent of ``base`` and each other."""
+    if extra.shape[1] == 0:
+        return np.zeros(0, dtype=np.intp)
+    scale = float(np.sqrt((extra**2).sum(axis=0)).max())
+    if scale == 0.0:
+        return np.zeros(0, dtype=np.intp)
+    rest = extra
+    if base.shape[1]:
+        rest = extra - base @ np.linalg.lstsq(base, extra, rcond=None)[0]
+    _, r, piv = scipy.linalg.qr(rest, mode="economic", pivoting=True)
+    diag = np.abs(np.diag(r))
+    rank = int(np.count_nonzero(diag > 1e-8 * scale))
+    return np.sort(piv[:rank]).astype(np.intp)
+
+
+def _ssr(y: FloatArray, X: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Coefficients and residuals of OLS of ``y`` on ``X`` (no covariance)."""
+    coef = np.linalg.lstsq(X, y, rcond=None)[0]
+    return coef, y - X @ coef
+
+
+# ---------------------------------------------------------------- the audit context
+
+
+@dataclass(frozen=True)
+class _Index:
+    """Integer codes of the estimation sample's units, periods and clusters."""
+
+    unit: IntArray
+    period: IntArray
+    cluster: IntArray
+    cluster_labels: pd.Index
+    n_units: int
+    n_periods: int
+
+    @classmethod
+    def of(cls, design: Design) -> _Index:
+        unit = pd.factorize(design.units)[0].astype(np.intp)
+        period = pd.factorize(design.periods, sort=True)[0].astype(np.intp)
+        cluster, labels = pd.factorize(design.clusters.to_numpy())
+        return cls(
+            unit,
+            period,
+            cluster.astype(np.intp),
+            pd.Index(labels),
+            int(unit.max()) + 1 if len(unit) else 0,
+            int(period.max()) + 1 if len(period) else 0,
+        )
+
+    @property
+    def n_clusters(self) -> int:
+        return len(self.cluster_labels)
+
+    def shifted(self, step: int) -> IntArray:
+        """Row of the same unit ``step`` periods later (earlier if negative), or -1."""
+        t = self.n_periods
+        table = np.full(self.n_units * t, -1, dtype=np.intp)
+        key = self.unit * t + self.period
+        table[key] = np.arange(len(key))
+        target = self.period + step
+        ok = (target >= 0) & (target < t)
+        out = np.full(len(key), -1, dtype=np.intp)
+        out[ok] = table[key[ok] + step]
+        return out
+
+    def period_dummies(self) -> FloatArray:
+        """A dummy for every period but the first (as in the estimation stage)."""
+        d = np.zeros((len(self.period), max(self.n_periods - 1, 0)))
+        rows = np.flatnonzero(self.period > 0)
+        d[rows, self.period[rows] - 1] = 1.0
+        return d
+
+    def nested(self) -> bool:
+        """Whether every unit lies in a single cluster."""
+        pairs = pd.DataFrame({"u": self.unit, "c": self.cluster}).drop_duplicates()
+        return len(pairs) == self.n_units
+
+
+@dataclass(frozen=True)
+class _Within:
+    """The fixed-effects model on unit-demeaned data (period dummies as columns)."""
+
+    terms: tuple[str, ...]
+    focus: int
+    y_raw: FloatArray
+    x_raw: FloatArray
+    d_raw: FloatArray
+    y: FloatArray
+    x: FloatArray
+    d: FloatArray
+    fit: _Fit
+
+    @property
+    def w(self) -> FloatArray:
+        return np.hstack([self.x, self.d])
+
+
+@dataclass(frozen=True)
+class _FirstDiff:
+    """First differences of consecutive periods; ``rows`` are the later rows."""
+
+    rows: IntArray
+    fit: _Fit
+
+
+@dataclass(frozen=True)
+class _Context:
+    design: Design
+    models: Mapping[str, ModelResult]
+    focus: str
+    index: _Index
+    within: _Within | None
+    first_diff: _FirstDiff | None
+    missing: str
+    fd_missing: str
+
+    @property
+    def alpha(self) -> float:
+        return THRESHOLDS["alpha"]
+
+    @property
+    def fe(self) -> ModelResult:
+        return self.models["fixed_effects"]
+
+    @property
+    def headline(self) -> str:
+        return self.fe.headline_inference
+
+    def headline_p(self) -> float:
+        return float(self.fe.inference[self.headline].p_values[self.focus])
+
+    def se_ratio(self, num: str, den: str) -> float | None:
+        """Ratio of two standard errors of the focus in the fixed-effects model."""
+        inf = self.fe.inference
+        if num not in inf or den not in inf:
+            return None
+        return float(inf[num].std_errors[self.focus] / inf[den].std_errors[self.focus])
+
+
+def _within(design: Design, fe: ModelResult, focus: str, index: _Index) -> _Within:
+    terms = tuple(fe.terms)
+    x_raw = design.x[list(terms)].to_numpy(dtype=float)
+    y_raw = design.y.to_numpy(dtype=float)
+    d_all = index.period_dummies() if design.settings.period_effects else np.zeros((len(y_raw), 0))
+    x = _demean(x_raw, index.unit)
+    d = _demean(d_all, index.unit) if d_all.shape[1] else d_all
+    keep = _independent(x, d)
+    d, d_raw = d[:, keep], d_all[:, keep]
+    y = _demean(y_raw[:, None], index.unit)[:, 0]
+    fit = _cluster_fit(y, np.hstack([x, d]), index.cluster)
+    return _Within(terms, terms.index(focus), y_raw, x_raw, d_raw, y, x, d, fit)
+
+
+def _first_diff(design: Design, within: _Within, index: _Index) -> _FirstDiff:
+    prev = index.shifted(-1)
+    rows = np.flatnonzero(prev >= 0)
+    if len(rows) == 0:
+        raise np.linalg.LinAlgError("no unit is observed in two consecutive periods")
+    before = prev[rows]
+    dy = within.y_raw[rows] - within.y_raw[before]
+    dx = within.x_raw[rows] - within.x_raw[before]
+    if design.settings.period_effects:
+        d_all = index.period_dummies()
+        dd = d_all[rows] - d_all[before]
+        dd = dd[:, _independent(dx, dd)]
+    else:
+        dd = np.zeros((len(rows), 0))
+    return _FirstDiff(rows, _cluster_fit(dy, np.hstack([dx, dd]), index.cluster[rows]))
+
+
+def _context(design: Design, models: Mapping[str, ModelResult], focus: str) -> _Context:
+    index = _Index.of(design)
+    within: _Within | None = None
+    first_diff: _FirstDiff | None = None
+    missing = fd_missing = ""
+    fe = models.get("fixed_effects")
+    if fe is None:
+        missing = (
+            "fixed effects were not estimated, and this check audits the fixed-effects estimate"
+        )
+    elif focus not in fe.terms:
+        missing = (
+            f"the fixed-effects model cannot estimate {focus!r} "
+            f"({fe.omitted.get(focus, 'it was left out')})"
+        )
+    else:
+        try:
+            within = _within(design, fe, focus, index)
+        except np.linalg.LinAlgError as exc:
+            missing = f"the fixed-effects model could not be rebuilt from the within data ({exc})"
+    if within is not None:
+        try:
+            first_diff = _first_diff(design, within, index)
+        except np.linalg.LinAlgError as exc:
+            fd_missing = f"first differences cannot be estimated ({exc})"
+    return _Context(design, models, focus, index, within, first_diff, missing, fd_missing)
+
+
+def _subsample_fit(
+    ctx: _Context, rows: IntArray, extra_raw: FloatArray
+) -> tuple[_Fit, list[int], IntArray] | None:
+    """The fixed-effects model on ``rows`` plus the columns ``extra_raw``.
+
+    Everything is demeaned within units over ``rows`` only. Returns the fit, the
+    fit's columns of the extra regressors, and which of ``extra_raw``'s columns
+    they are (one without variation within units is dropped); None when no extra
+    column is left. The focus keeps its column of the full model.
+    """
+    w = ctx.within
+    assert w is not None
+    unit = pd.factorize(ctx.index.unit[rows])[0].astype(np.intp)
+    x = _demean(w.x_raw[rows], unit)
+    d = _demean(w.d_raw[rows], unit) if w.d_raw.shape[1] else w.d_raw[rows]
+    d = d[:, _independent(x, d)]
+    e = _demean(extra_raw, unit)
+    keep = _independent(np.hstack([x, d]), e)
+    if len(keep) == 0:
+        return None
+    y = _demean(w.y_raw[rows][:, None], unit)[:, 0]
+    X = np.hstack([x, d, e[:, keep]])
+    fit = _cluster_fit(y, X, ctx.index.cluster[rows])
+    first = x.shape[1] + d.shape[1]
+    return fit, list(range(first, first + len(keep))), keep
+
+
+def _fmt(value: float) -> str:
+    return f"{value:.3g}"
+
+
+# ---------------------------------------------------------------- omitted variables
+
+
+def oster_delta(
+    beta: float,
+    *,
+    beta_short: float,
+    r2_short: float,
+    beta_long: float,
+    r2_long: float,
+    r2_max: float,
+    var_y: float,
+    var_x: float,
+    tau_x: float,
+) -> float:
+    r"""Oster's delta: how much selection on unobservables yields coefficient ``beta``.
+
+    Parameters
+    ----------
+    beta
+        The coefficient value to be explained (0 asks "what explains it away").
+    beta_short, r2_short
+        Coefficient and R-squared of the regression of the outcome on the focus
+        regressor alone (with a constant).
+    beta_long, r2_long
+        The same with every observed control.
+    r2_max
+        R-squared of a hypothetical regression that also held the unobservables.
+    var_y, var_x
+        Variances of the outcome and of the focus regressor.
+    tau_x
+        Variance of the focus regressor left after the observed controls.
+
+    Notes
+    -----
+    With :math:`b = \tilde\beta - \beta`, :math:`m = \mathring\beta - \tilde\beta`,
+    :math:`A = \tilde R - \mathring R` and :math:`D = R_{max} - \tilde R`
+    (Oster 2019, *JBES* 37(2), 187-204, Proposition 2 and its appendix):
+
+    .. math:: \delta = \frac{b A\sigma_y^2\tau_x + b\sigma_x^2\tau_x m^2
+              + 2b^2\tau_x m\sigma_x^2 + b^3(\tau_x\sigma_x^2 - \tau_x^2)}
+              {D\sigma_y^2 m\sigma_x^2 + bD\sigma_y^2(\sigma_x^2 - \tau_x)
+              + b^2\tau_x m\sigma_x^2 + b^3(\tau_x\sigma_x^2 - \tau_x^2)}.
+
+    Returns ``inf`` when the denominator is zero.
+    """
+    b = beta_long - beta
+    m = beta_short - beta_long
+    a = r2_long - r2_short
+    d = r2_max - r2_long
+    cubic = b**3 * (tau_x * var_x - tau_x**2)
+    num = b * a * var_y * tau_x + b * var_x * tau_x * m**2 + 2 * b**2 * tau_x * m * var_x + cubic
+    den = d * var_y * m * var_x + b * d * var_y * (var_x - tau_x) + b**2 * tau_x * m * var_x + cubic
+    return float(num / den) if den != 0 else float("inf")
+
+
+def oster_beta_star(
+    *,
+    beta_short: float,
+    r2_short: float,
+    beta_long: float,
+    r2_long: float,
+    r2_max: float,
+    var_y: float,
+    var_x: float,
+    tau_x: float,
+) -> float:
+    r"""Oster's bias-adjusted coefficient at :math:`\delta = 1`.
+
+    Notes
+    -----
+    Setting :math:`\delta = 1` in `oster_delta` cancels the cubic terms and
+    leaves a quadratic in :math:`b = \tilde\beta - \beta^*`,
+
+    .. math:: \tau_x m\sigma_x^2\, b^2 + [A\sigma_y^2\tau_x + \sigma_x^2\tau_x m^2
+              - D\sigma_y^2(\sigma_x^2-\tau_x)]\, b - D\sigma_y^2 m\sigma_x^2 = 0.
+
+    The product of its roots is :math:`-D\sigma_y^2/\tau_x < 0`, so exactly one
+    root has the sign of :math:`m`: the one for which the unobservables push the
+    coefficient the same way as the observed controls did, as positive
+    proportional selection implies (Oster 2019, Proposition 2). With no movement
+    (:math:`m = 0`) or no room left (:math:`D = 0`), :math:`\beta^* = \tilde\beta`.
+    """
+    m = beta_short - beta_long
+    a = r2_long - r2_short
+    d = r2_max - r2_long
+    qa = tau_x * m * var_x
+    qb = a * var_y * tau_x + var_x * tau_x * m**2 - d * var_y * (var_x - tau_x)
+    qc = -d * var_y * m * var_x
+    if qa == 0.0 or qc == 0.0:
+        return beta_long
+    roots = np.roots([qa, qb, qc])
+    real = roots[np.isreal(roots)].real
+    same = real[np.sign(real) == np.sign(m)]
+    return float(beta_long - same[0]) if len(same) else float("nan")
+
+
+def _omitted_variables(ctx: _Context) -> Diagnostic:
+    key = "omitted_variables"
+    w = ctx.within
+    assert w is not None
+    x_all = ctx.design.x.to_numpy(dtype=float)
+    j_all = list(ctx.design.x.columns).index(ctx.focus)
+    xf = x_all[:, j_all]
+    y = w.y_raw
+    n = len(y)
+    ones = np.ones((n, 1))
+    pooled = _ssr(y, np.hstack([ones, x_all]))[0][1 + j_all]
+    one_way = _ssr(w.y, w.x)[0][w.focus]
+    d_all = ctx.index.period_dummies()
+    d_w = _demean(d_all, ctx.index.unit) if d_all.shape[1] else d_all
+    d_w = d_w[:, _independent(w.x, d_w)]
+    two_way = _ssr(w.y, np.hstack([w.x, d_w]))[0][w.focus]
+    path = {"pooled_ols": pooled, "unit_effects": one_way, "unit_and_period_effects": two_way}
+
+    short_coef, short_resid = _ssr(y, np.column_stack([ones, xf]))
+    tss = float(((y - y.mean()) ** 2).sum())
+    beta_long = float(w.fit.coef[w.focus])
+    r2_long = 1.0 - float(w.fit.resid @ w.fit.resid) / tss
+    r2_short = 1.0 - float(short_resid @ short_resid) / tss
+    others = np.delete(w.w, w.focus, axis=1)
+    tau_resid = w.x[:, w.focus] - (
+        others @ _ssr(w.x[:, w.focus], others)[0] if others.shape[1] else 0
+    )
+    r2_max = min(1.0, THRESHOLDS["oster_rmax_multiplier"] * r2_long)
+    inputs = {
+        "beta_short": float(short_coef[1]),
+        "r2_short": r2_short,
+        "beta_long": beta_long,
+        "r2_long": r2_long,
+        "r2_max": r2_max,
+        "var_y": tss / n,
+        "var_x": float(xf.var()),
+        "tau_x": float(tau_resid @ tau_resid) / n,
+    }
+    delta = oster_delta(0.0, **inputs)
+    beta_star = oster_beta_star(**inputs)
+    bounds = sorted([beta_long, beta_star]) if np.isfinite(beta_star) else [beta_long, beta_star]
+    se = w.fit.se(w.focus)
+    significant = ctx.headline_p() < ctx.alpha
+    crosses_zero = bool(np.isfinite(beta_star) and bounds[0] <= 0.0 <= bounds[1])
+    fragile = abs(delta) < THRESHOLDS["oster_delta"] or crosses_zero
+    effect = {
+        "estimate": beta_long,
+        "beta_star": beta_star,
+        "identified_set": bounds,
+        "delta_for_zero": delta,
+        "r2_max": r2_max,
+        "coefficient_path": path,
+    }
+    details = {
+        **inputs,
+        "movement_pooled_to_fe_in_se": (pooled - beta_long) / se,
+        "controls": "the other regressors and the unit effects"
+        + (" and period effects" if ctx.design.settings.period_effects else ""),
+        "uncontrolled": "pooled OLS of the outcome on the focus regressor alone",
+    }
+    sentence = (
+        f"unobservables would have to matter {_fmt(abs(delta))} times as much as the unit "
+        f"effects and other regressors to explain the estimate of {ctx.focus} away, and with "
+        f"equal importance it would be {_fmt(beta_star)} instead of {_fmt(beta_long)}"
+    )
+    if not significant:
+        status: Status = "ok"
+        message = (
+            f"The estimate of {ctx.focus} is not distinguishable from zero, so there is nothing "
+            f"for omitted variables to explain away; at equal selection on unobservables it "
+            f"would be {_fmt(beta_star)}."
+        )
+    elif fragile:
+        status = "caution"
+        message = f"Fragile to omitted variables: {sentence}."
+    else:
+        status = "ok"
+        message = f"Robust to omitted variables by Oster's bound: {sentence}."
+    return Diagnostic(key, status, message, statistic=delta, effect=effect, details=details)
+
+
+# ---------------------------------------------------------------- exogeneity and form
+
+
+def _strict_exogeneity(ctx: _Context) -> Diagnostic:
+    key = "strict_exogeneity"
+    w = ctx.within
+    assert w is not None
+    nxt = ctx.index.shifted(1)
+    rows = np.flatnonzero(nxt >= 0)
+    if len(rows) == 0:
+        return _not_run(key, "no unit is observed in two consecutive periods")
+    leads = w.x_raw[nxt[rows]]
+    try:
+        out = _subsample_fit(ctx, rows, leads)
+    except np.linalg.LinAlgError as exc:
+        return _not_run(key, f"the panel is too short for a lead of the regressors ({exc})")
+    if out is None:
+        return _not_run(key, "the next-period regressors do not vary within units")
+    fit, cols, kept = out
+    stat, p = fit.wald(cols)
+    q = len(cols)
+    effect = {
+        "estimate": float(w.fit.coef[w.focus]),
+        "estimate_with_leads": float(fit.coef[w.focus]),
+    }
+    details = {
+        "reference": f"F({q}, {fit.clusters - 1})",
+        "df_denominator": fit.clusters - 1,
+        "nobs": fit.nobs,
+        "lead_coefficients": {
+            w.terms[i]: float(fit.coef[c]) for i, c in zip(kept, cols, strict=True)
+        },
+    }
+    if p < ctx.alpha:
+        status: Status = "problem"
+        message = (
+            "Next-period values of the regressors help predict today's outcome, so shocks to "
+            "the outcome appear to feed back into later regressors and the fixed-effects "
+            "estimate is biased (strict exogeneity fails)."
+        )
+    else:
+        status = "ok"
+        message = (
+            "Next-period values of the regressors do not help predict today's outcome, so "
+            "the test finds no feedback from outcome shocks to later regressors."
+        )
+    return Diagnostic(key, status, message, stat, p, q, effect, details)
+
+
+def _functional_form(ctx: _Context) -> Diagnostic:
+    key = "functional_form"
+    w = ctx.within
+    assert w is not None
+    index = w.x_raw @ w.fit.coef[: w.x.shape[1]]
+    sd = float(index.std())
+    if sd == 0.0:
+        return _not_run(key, "the fitted values do not vary")
+    z = (index - index.mean()) / sd
+    powers = _demean(np.column_stack([z**2, z**3]), ctx.index.unit)
+    keep = _independent(w.w, powers)
+    if len(keep) == 0:
+        return _not_run(key, "powers of the fitted values add nothing within units")
+    try:
+        fit = _cluster_fit(w.y, np.hstack([w.w, powers[:, keep]]), ctx.index.cluster)
+    except np.linalg.LinAlgError as exc:
+        return _not_run(key, f"the augmented model cannot be fitted ({exc})")
+    cols = list(range(w.w.shape[1], w.w.shape[1] + len(keep)))
+    stat, p = fit.wald(cols)
+    q = len(cols)
+    effect = {
+        "estimate": float(w.fit.coef[w.focus]),
+        "estimate_with_powers": float(fit.coef[w.focus]),
+    }
+    details = {
+        "reference": f"F({q}, {fit.clusters - 1})",
+        "df_denominator": fit.clusters - 1,
+        "powers": [int(2 + k) for k in keep],
+    }
+    if p < ctx.alpha:
+        status: Status = "caution"
+        message = (
+            "The outcome bends with the fitted values in a way the linear model misses, so the "
+            f"coefficient of {ctx.focus} is an average slope that may differ across its range; "
+            "consider transformations or interactions."
+        )
+    else:
+        status = "ok"
+        message = "Squares and cubes of the fitted values add nothing, so the linear form fits."
+    return Diagnostic(key, status, message, stat, p, q, effect, details)
+
+
+# ---------------------------------------------------------------- measurement error
+
+
+def _within_shares(design: Design, unit: IntArray) -> dict[str, float]:
+    x = design.x.to_numpy(dtype=float)
+    total = ((x - x.mean(axis=0)) ** 2).sum(axis=0)
+    within = (_demean(x, unit) ** 2).sum(axis=0)
+    shares = np.divide(within, total, out=np.zeros_like(total), where=total > 0)
+    return {str(c): float(s) for c, s in zip(design.x.columns, shares, strict=True)}
+
+
+def _measurement_error(ctx: _Context) -> Diagnostic:
+    key = "measurement_error"
+    w = ctx.within
+    assert w is not None
+    shares = _within_shares(ctx.design, ctx.index.unit)
+    share = shares[ctx.focus]
+    low = share < THRESHOLDS["within_share_low"]
+    b_fe, se_fe = float(w.fit.coef[w.focus]), w.fit.se(w.focus)
+    effect: dict[str, Any] = {"fixed_effects": b_fe}
+    details: dict[str, Any] = {"within_share": shares, "reference": "N(0, 1)"}
+    z = p = None
+    diverge = False
+    if ctx.first_diff is not None:
+        fd = ctx.first_diff.fit
+        b_fd, se_fd = float(fd.coef[w.focus]), fd.se(w.focus)
+        z = (b_fe - b_fd) / float(np.hypot(se_fe, se_fd))
+        p = float(2.0 * stats.norm.sf(abs(z)))
+        diverge = abs(z) > THRESHOLDS["fe_fd_divergence_z"]
+        effect |= {"first_difference": b_fd, "difference": b_fe - b_fd}
+        details |= {"se_fixed_effects": se_fe, "se_first_difference": se_fd}
+    else:
+        details["first_difference"] = ctx.fd_missing
+    share_text = f"{share:.0%} of the variance of {ctx.focus} is within units"
+    if diverge:
+        status: Status = "caution"
+        message = (
+            f"Fixed effects ({_fmt(b_fe)}) and first differences ({_fmt(effect['first_difference'])})"
+            f" disagree beyond sampling error (z = {_fmt(float(z or 0))}) and {share_text}; "
+            "measurement error in the regressor attenuates the two differently, though feedback "
+            "or dynamics can do the same."
+        )
+    elif low:
+        status = "caution"
+        message = (
+            f"Only {share_text}, so any measurement error in it is magnified by the fixed-effects "
+            "transformation and may bias the estimate towards zero."
+        )
+    else:
+        status = "ok"
+        message = (
+            f"{share_text[0].upper()}{share_text[1:]} and fixed effects and first differences "
+            "agree within sampling error, so there is no sign of attenuation from measurement "
+            "error."
+        )
+    return Diagnostic(key, status, message, z, p, None, effect, details)
+
+
+# ---------------------------------------------------------------- attrition
+
+
+def _attrition(ctx: _Context) -> Diagnostic:
+    key = "attrition"
+    w = ctx.within
+    assert w is not None
+    ix = ctx.index
+    t = ix.n_periods
+    frame = pd.DataFrame({"u": ix.unit, "t": ix.period}).groupby("u")["t"]
+    first, last, count = frame.min().to_numpy(), frame.max().to_numpy(), frame.size().to_numpy()
+    pattern = {
+        "units": ix.n_units,
+        "periods": t,
+        "complete_units": int((count == t).sum()),
+        "units_dropping_out": int((last < t - 1).sum()),
+        "units_entering_late": int((first > 0).sum()),
+        "units_with_gaps": int((count < last - first + 1).sum()),
+        "missing_unit_periods": int(ix.n_units * t - len(ix.unit)),
+    }
+    details: dict[str, Any] = {"pattern": pattern, "presence": "in the estimation sample"}
+    if pattern["complete_units"] == ix.n_units:
+        return Diagnostic(
+            key,
+            "ok",
+            "The panel is balanced: every unit is observed in every period, so there is no "
+            "attrition to test.",
+            details=details,
+        )
+    rows = np.flatnonzero(ix.period < t - 1)
+    present = (ix.shifted(1)[rows] >= 0).astype(float)[:, None]
+    summary = (
+        f"{pattern['units_dropping_out']} unit(s) drop out, {pattern['units_entering_late']} "
+        f"enter late and {pattern['units_with_gaps']} have gaps"
+    )
+    try:
+        out = _subsample_fit(ctx, rows, present)
+    except np.linalg.LinAlgError as exc:
+        return _not_run(key, f"{summary}, but the selection test cannot be fitted ({exc})")
+    if out is None:
+        return Diagnostic(
+            key,
+            "ok",
+            f"{summary}, but presence in the next period never changes within a unit, so the "
+            "selection test does not apply.",
+            details=details,
+        )
+    fit, cols, _ = out
+    tstat, p = fit.t_test(cols[0])
+    details |= {
+        "reference": f"t({fit.clusters - 1})",
+        "presence_coefficient": float(fit.coef[cols[0]]),
+        "nobs": fit.nobs,
+    }
+    effect = {
+        "estimate": float(w.fit.coef[w.focus]),
+        "estimate_with_presence": float(fit.coef[w.focus]),
+    }
+    if p < ctx.alpha:
+        status: Status = "problem"
+        message = (
+            f"{summary}, and whether a unit is still observed next period is related to its "
+            "outcome shocks, so selective attrition may bias the fixed-effects estimate."
+        )
+    else:
+        status = "ok"
+        message = (
+            f"{summary}, but presence next period is unrelated to the outcome shocks, so the "
+            "attrition looks ignorable for the fixed-effects estimate."
+        )
+    return Diagnostic(key, status, message, tstat, p, fit.clusters - 1, effect, details)
+
+
+# ---------------------------------------------------------------- error structure
+
+
+def _se_consequence(ctx: _Context, what: str, remedy: str) -> tuple[Status, str]:
+    """Status and the clause on standard errors, given the headline inference."""
+    if ctx.headline == "cluster":
+        return "caution", (
+            f"{what}, so classical standard errors are too small; the headline's clustered "
+            f"standard errors allow for this{remedy}."
+        )
+    return (
+        "problem",
+        f"{what}, so the headline's {ctx.headline} standard errors are unreliable{remedy}.",
+    )
+
+
+def _serial_correlation(ctx: _Context) -> Diagnostic:
+    key = "serial_correlation"
+    if ctx.first_diff is None:
+        return _not_run(key, ctx.fd_missing)
+    ix = ctx.index
+    fd = ctx.first_diff
+    position = np.full(len(ix.unit), -1, dtype=np.intp)
+    position[fd.rows] = np.arange(len(fd.rows))
+    prev = ix.shifted(-1)[fd.rows]
+    lag = np.where(prev >= 0, position[np.maximum(prev, 0)], -1)
+    ok = lag >= 0
+    if ok.sum() < 3:
+        return _not_run(key, "it needs units observed in three consecutive periods")
+    r = fd.fit.resid
+    X = np.column_stack([np.ones(int(ok.sum())), r[lag[ok]]])
+    try:
+        fit = _cluster_fit(r[ok], X, ix.cluster[fd.rows[ok]])
+    except np.linalg.LinAlgError as exc:
+        return _not_run(key, f"the residual regression cannot be fitted ({exc})")
+    rho = float(fit.coef[1])
+    tstat, p = fit.t_test(1, null=-0.5)
+    effect: dict[str, Any] = {
+        "fd_residual_autocorrelation": rho,
+        "implied_ar1_of_errors": 1.0 + 2.0 * rho,
+        "se_ratio_cluster_to_classical": ctx.se_ratio("cluster", "classical"),
+    }
+    details = {"reference": f"t({fit.clusters - 1})", "null": -0.5, "nobs": fit.nobs}
+    if p < ctx.alpha:
+        status, message = _se_consequence(
+            ctx,
+            f"Errors are correlated over time within units (implied autocorrelation "
+            f"{_fmt(1.0 + 2.0 * rho)})",
+            "" if ctx.headline == "cluster" else "; cluster by unit",
+        )
+    else:
+        status = "ok"
+        message = (
+            "No sign that errors are correlated over time within units, so classical and "
+            "clustered standard errors should agree in this respect."
+        )
+    return Diagnostic(key, status, message, tstat, p, fit.clusters - 1, effect, details)
+
+
+def pesaran_cd(resid: FloatArray, unit: IntArray, period: IntArray) -> tuple[float, int, float]:
+    r"""Pesaran's CD statistic in O(NT), for balanced and unbalanced panels.
+
+    Parameters
+    ----------
+    resid
+        Residuals with mean zero within each unit.
+    unit, period
+        Integer codes of each residual's unit and period.
+
+    Returns
+    -------
+    cd, units, mean_correlation
+        The statistic (N(0, 1) under no cross-sectional dependence), the number of
+        units used (those with at least two periods and nonzero residuals) and the
+        pair-period-weighted average correlation.
+
+    Notes
+    -----
+    Pesaran (2004; 2015, *Econometric Reviews* 34) defines
+    :math:`CD = \sqrt{2/(N(N-1))}\sum_{i<j}\sqrt{T_{ij}}\,\hat\rho_{ij}`. Standardise
+    each unit's residuals over its own periods, :math:`z_{it} = e_{it}/s_i` with
+    :math:`s_i^2 = T_i^{-1}\sum_t e_{it}^2`, and let :math:`S_t = \sum_i z_{it}`,
+    :math:`Q_t = \sum_i z_{it}^2` and :math:`n_t` the units present in period t.
+    Then :math:`\sum_{i<j}\sum_{t\in T_{ij}} z_{it}z_{jt} = \tfrac12\sum_t(S_t^2 - Q_t)`
+    and :math:`\sum_{i<j}T_{ij} = \tfrac12\sum_t(n_t^2-n_t)`, so
+
+    .. math:: CD = \frac{\tfrac12\sum_t (S_t^2 - Q_t)}{\sqrt{\tfrac12\sum_t(n_t^2 - n_t)}}
+
+    costs O(NT). On a balanced panel :math:`\hat\rho_{ij} = T^{-1}\sum_t z_{it}z_{jt}`
+    and this equals Pesaran's CD exactly. On an unbalanced panel every pair is
+    formed over the periods both units share, with each unit standardised over
+    all its own periods (not over the shared ones) and each pair weighted by
+    :math:`T_{ij}` (not :math:`\sqrt{T_{ij}}`); the denominator is the exact null
+    standard deviation of that numerator, so the statistic stays N(0, 1) under the
+    null. It approximates Pesaran's unbalanced CD, which recentres and rescales
+    every pair over its shared periods.
+    """
+    t_i = np.bincount(unit)
+    ss = np.bincount(unit, weights=resid**2)
+    usable = (t_i >= 2) & (ss > 0)
+    rows = usable[unit]
+    s = np.sqrt(ss[usable] / t_i[usable])
+    scale = np.zeros(len(t_i))
+    scale[usable] = 1.0 / s
+    z = resid[rows] * scale[unit[rows]]
+    per = period[rows]
+    s_t = np.bincount(per, weights=z)
+    q_t = np.bincount(per, weights=z**2)
+    n_t = np.bincount(per).astype(float)
+    num = 0.5 * float((s_t**2 - q_t).sum())
+    pairs = 0.5 * float((n_t**2 - n_t).sum())
+    if pairs <= 0:
+        return float("nan"), int(usable.sum()), float("nan")
+    return num / np.sqrt(pairs), int(usable.sum()), num / pairs
+
+
+def _cross_sectional_dependence(ctx: _Context) -> Diagnostic:
+    key = "cross_sectional_dependence"
+    w = ctx.within
+    assert w is not None
+    period_effects = w.d.shape[1] > 0
+    resid = _ssr(w.y, w.x)[1] if period_effects else w.fit.resid
+    cd, units, rho = pesaran_cd(resid, ctx.index.unit, ctx.index.period)
+    if not np.isfinite(cd):
+        return _not_run(key, "no two units share a period")
+    p = float(2.0 * stats.norm.sf(abs(cd)))
+    effect = {
+        "mean_correlation": rho,
+        "se_ratio_driscoll_kraay_to_cluster": ctx.se_ratio("driscoll_kraay", "cluster"),
+    }
+    details = {
+        "reference": "N(0, 1)",
+        "units": units,
+        "residuals": "fixed effects with unit effects only"
+        + (
+            " (after period effects the average correlation is zero by construction and the "
+            "statistic is biased, Juodis & Reese 2022)"
+            if period_effects
+            else ""
+        ),
+    }
+    if p >= ctx.alpha:
+        return Diagnostic(
+            key,
+            "ok",
+            "No sign that errors are correlated across units within periods, so clustering by "
+            "unit is adequate in this respect.",
+            cd,
+            p,
+            None,
+            effect,
+            details,
+        )
+    has_dk = "driscoll_kraay" in ctx.fe.inference
+    remedy = "compare the Driscoll–Kraay standard errors" if has_dk else "add Driscoll–Kraay"
+    if period_effects:
+        status: Status = "caution"
+        message = (
+            "Errors share shocks across units within periods; the period effects absorb the part "
+            "that hits all units alike, but if units respond unequally, standard errors "
+            f"clustered by unit are too small ({remedy})."
+        )
+    else:
+        status = "problem"
+        message = (
+            "Errors share shocks across units within periods, so standard errors clustered by "
+            f"unit are too small; add period effects and {remedy}."
+        )
+    return Diagnostic(key, status, message, cd, p, None, effect, details)
+
+
+def groupwise_heteroskedasticity(resid: FloatArray, unit: IntArray) -> tuple[float, int]:
+    r"""LM statistic that every unit has the same error variance, and its df.
+
+    Parameters
+    ----------
+    resid
+        Fixed-effects residuals (mean zero within each unit).
+    unit
+        Integer code of each residual's unit.
+
+    Notes
+    -----
+    Greene's LM test for groupwise heteroskedasticity (*Econometric Analysis*,
+    section on groupwise heteroscedasticity),
+    :math:`LM = \sum_i \tfrac{T_i}{2}(s_i^2/s^2 - 1)^2 \sim \chi^2_{n-1}`, assumes
+    normal errors and unit means that are known. Two changes make it fit
+    fixed-effects residuals: each unit loses one degree of freedom to its
+    effect, so :math:`\tilde e_{it}^2 = e_{it}^2 T_i/(T_i-1)`,
+    :math:`s_i^2 = T_i^{-1}\sum_t \tilde e_{it}^2`, weights :math:`\nu_i = T_i-1`
+    and :math:`\bar s^2 = \sum_i\nu_i s_i^2/\sum_i\nu_i`; and the factor
+    :math:`2\bar s^4` (the variance of a squared normal error) is replaced by the
+    sample variance :math:`\hat v` of :math:`\tilde e_{it}^2`, a studentisation in
+    the spirit of Koenker (1981) that drops the normality assumption:
+
+    .. math:: LM = \sum_i \nu_i (s_i^2 - \bar s^2)^2 / \hat v \sim \chi^2_{n-1}.
+
+    Units observed once carry no residual and are left out.
+    """
+    t_i = np.bincount(unit).astype(float)
+    usable = t_i >= 2
+    rows = usable[unit]
+    nu = t_i - 1
+    scaled = resid[rows] ** 2 * (t_i / np.where(usable, nu, 1.0))[unit[rows]]
+    s2 = np.bincount(unit[rows], weights=scaled, minlength=len(t_i))[usable] / t_i[usable]
+    nu_u = nu[usable]
+    mean = float((nu_u * s2).sum() / nu_u.sum())
+    v = float(scaled.var())
+    lm = float((nu_u * (s2 - mean) ** 2).sum() / v) if v > 0 else 0.0
+    return lm, int(usable.sum()) - 1
+
+
+def _heteroskedasticity(ctx: _Context) -> Diagnostic:
+    key = "heteroskedasticity"
+    w = ctx.within
+    assert w is not None
+    lm, df = groupwise_heteroskedasticity(w.fit.resid, ctx.index.unit)
+    if df < 1:
+        return _not_run(key, "it needs at least two units observed in two or more periods")
+    p = float(stats.chi2.sf(lm, df))
+    effect = {
+        "se_ratio_robust_to_classical": ctx.se_ratio("robust", "classical"),
+        "se_ratio_cluster_to_classical": ctx.se_ratio("cluster", "classical"),
+    }
+    details = {"reference": f"chi2({df})"}
+    if p < ctx.alpha:
+        status, message = _se_consequence(
+            ctx,
+            "The error variance differs across units",
+            "" if ctx.headline == "cluster" else "; use robust or clustered standard errors",
+        )
+    else:
+        status = "ok"
+        message = (
+            "No sign that the error variance differs across units, so classical standard "
+            "errors are not distorted by it."
+        )
+    return Diagnostic(key, status, message, lm, p, df, effect, details)
+
+
+# ---------------------------------------------------------------- clusters
+
+
+def _few_clusters(ctx: _Context) -> Diagnostic:
+    key = "few_clusters"
+    ix = ctx.index
+    g = ix.n_clusters
+    sizes = np.bincount(ix.cluster, minlength=g)
+    largest = int(sizes.argmax())
+    share = float(sizes[largest] / sizes.sum())
+    details: dict[str, Any] = {
+        "clusters": g,
+        "size_min": int(sizes.min()),
+        "size_median": float(np.median(sizes)),
+        "size_max": int(sizes.max()),
+        "largest_cluster": str(ix.cluster_labels[largest]),
+        "largest_share": share,
+        "cluster_by": ctx.design.settings.cluster_by[0],
+    }
+    dominant = share > THRESHOLDS["dominant_cluster_share"]
+    if g < THRESHOLDS["few_clusters"]:
+        status: Status = "problem"
+        message = (
+            f"Only {g} clusters: cluster-robust standard errors and tests are unreliable with "
+            "so few, so judge the estimate by the wild cluster bootstrap."
+        )
+    elif g < THRESHOLDS["clusters_caution"] or dominant:
+        status = "caution"
+        message = (
+            f"{g} clusters"
+            + (f", the largest holding {share:.0%} of the rows" if dominant else "")
+            + ": cluster-robust inference may be somewhat optimistic, so compare the wild "
+            "cluster bootstrap."
+        )
+    else:
+        status = "ok"
+        message = (
+            f"{g} clusters, the largest holding {share:.0%} of the rows: enough for "
+            "cluster-robust standard errors."
+        )
+    effect: dict[str, Any] = {}
+    if status != "ok":
+        effect = _bootstrap_effect(ctx, details)
+    return Diagnostic(key, status, message, float(g), None, None, effect, details)
+
+
+def _bootstrap_effect(ctx: _Context, details: dict[str, Any]) -> dict[str, Any]:
+    w = ctx.within
+    if w is None:
+        details["wild_bootstrap"] = f"not run: {ctx.missing}"
+        return {}
+    if not ctx.index.nested():
+        details["wild_bootstrap"] = (
+            "not run: units are not nested in clusters, so the within data cannot be used"
+        )
+        return {}
+    try:
+        boot = wild_cluster_bootstrap(
+            w.y,
+            w.w,
+            ctx.index.cluster,
+            term_index=w.focus,
+            term=ctx.focus,
+            draws=int(THRESHOLDS["bootstrap_draws"]),
+            level=ctx.design.settings.level,
+            seed=0,
+        )
+    except ValueError as exc:
+        details["wild_bootstrap"] = f"not run: {exc}"
+        return {}
+    details["wild_bootstrap"] = boot.to_dict()
+    return {
+        "estimate": boot.estimate,
+        "wild_bootstrap_p_value": boot.p_value,
+        "wild_bootstrap_ci": [boot.ci_low, boot.ci_high],
+        "cluster_p_value": ctx.headline_p() if ctx.headline == "cluster" else None,
+    }
+
+
+def leave_one_cluster_out(
+    y: FloatArray, X: FloatArray, clusters: IntArray, n_clusters: int
+) -> FloatArray:
+    r"""Coefficients with each cluster left out in turn, from cluster-level sums.
+
+    Returns a ``n_clusters x K`` array; a row is NaN when the regressors are
+    singular without that cluster.
+
+    Notes
+    -----
+    With :math:`A = X'X`, :math:`b = X'y` and the cluster sums :math:`A_g =
+    X_g'X_g`, :math:`b_g = X_g'y_g`,
+    :math:`\hat\beta^{(g)} = (A - A_g)^{-1}(b - b_g)`: O(NK^2) for the sums and
+    O(GK^3) for the solves, no refit. On within-demeaned data this equals a refit
+    of the fixed-effects model without cluster g whenever every unit lies in one
+    cluster, because removing a cluster leaves the other units' demeaned rows
+    unchanged (MacKinnon, Nielsen & Webb 2023, section on the CV3 jackknife).
+    """
+    k = X.shape[1]
+    a = X.T @ X
+    b = X.T @ y
+    a_g = np.stack(
+        [_group_sums(X * X[:, [j]], clusters, n_clusters) for j in range(k)], axis=1
+    )  # G x K x K
+    b_g = _group_sums(X * y[:, None], clusters, n_clusters)
+    lhs, rhs = a[None] - a_g, b[None] - b_g
+    out = np.full((n_clusters, k), np.nan)
+    cond = np.linalg.cond(lhs)
+    ok = cond < 1e12
+    if ok.any():
+        out[ok] = np.linalg.solve(lhs[ok], rhs[ok][..., None])[..., 0]
+    return out
+
+
+def _influential_clusters(ctx: _Context) -> Diagnostic:
+    key = "influential_clusters"
+    w = ctx.within
+    assert w is not None
+    ix = ctx.index
+    if not ix.nested():
+        return _not_run(
+            key,
+            "units are not nested in clusters, so leaving a cluster out changes other units' "
+            "within data and cluster-level sums do not give the refit",
+        )
+    g = ix.n_clusters
+    loo = leave_one_cluster_out(w.y, w.w, ix.cluster, g)[:, w.focus]
+    finite = np.isfinite(loo)
+    if finite.sum() < 2:
+        return _not_run(key, "the estimate cannot be recomputed without single clusters")
+    b = float(w.fit.coef[w.focus])
+    se = w.fit.se(w.focus)
+    shift = loo - b
+    worst = int(np.nanargmax(np.abs(shift)))
+    cv3 = float(np.sqrt((g - 1) / g * np.nansum(shift**2)))
+    t_cv3 = b / cv3 if cv3 > 0 else float("inf")
+    p_cv3 = float(2.0 * stats.t.sf(abs(t_cv3), g - 1))
+    p_cr1 = w.fit.t_test(w.focus)[1]
+    stat = float(abs(shift[worst]) / se)
+    labels = [str(c) for c in ix.cluster_labels]
+    order = np.argsort(-np.abs(np.nan_to_num(shift)))[:10]
+    effect = {
+        "estimate": b,
+        "range": [float(np.nanmin(loo)), float(np.nanmax(loo))],
+        "max_change": float(shift[worst]),
+        "most_influential_cluster": labels[worst],
+        "estimate_without_it": float(loo[worst]),
+        "cv3_se": cv3,
+        "cr1_se": se,
+        "cv3_p_value": p_cv3,
+        "leave_one_out": {labels[i]: float(loo[i]) for i in order},
+    }
+    details = {
+        "reference": f"t({g - 1})",
+        "clusters_not_recomputed": [labels[i] for i in np.flatnonzero(~finite)],
+        "statistic": "largest change from leaving one cluster out, in CR1 standard errors",
+    }
+    significant = p_cr1 < ctx.alpha
+    flips = significant and bool(np.any(np.sign(loo[finite]) != np.sign(b)))
+    unstable = stat > THRESHOLDS["influence_shift_se"] or cv3 > THRESHOLDS["cv3_ratio"] * se
+    lost = significant and p_cv3 >= ctx.alpha
+    without = f"without cluster {labels[worst]} the estimate is {_fmt(float(loo[worst]))}"
+    if flips:
+        status: Status = "problem"
+        message = (
+            f"A single cluster decides the sign of the estimate: {without} instead of {_fmt(b)}."
+        )
+    elif unstable or lost:
+        status = "caution"
+        message = (
+            f"The estimate leans on a few clusters: {without} instead of {_fmt(b)}, and the "
+            f"jackknife standard error is {_fmt(cv3)} against {_fmt(se)} clustered"
+            + ("; with it the estimate is not significant." if lost else ".")
+        )
+    else:
+        status = "ok"
+        message = (
+            f"No single cluster drives the estimate: leaving any one out moves it by at most "
+            f"{_fmt(stat)} standard errors."
+        )
+    return Diagnostic(key, status, message, stat, None, None, effect, details)
+
+
+# ---------------------------------------------------------------- the audit
+
+_Check = Callable[[_Context], Diagnostic]
+
+_CHECKS: dict[str, tuple[_Check, bool]] = {
+    "omitted_variables": (_omitted_variables, True),
+    "strict_exogeneity": (_strict_exogeneity, True),
+    "functional_form": (_functional_form, True),
+    "measurement_error": (_measurement_error, True),
+    "attrition": (_attrition, True),
+    "serial_correlation": (_serial_correlation, True),
+    "cross_sectional_dependence": (_cross_sectional_dependence, True),
+    "heteroskedasticity": (_heteroskedasticity, True),
+    "few_clusters": (_few_clusters, False),
+    "influential_clusters": (_influential_clusters, True),
+}
+
+
+def run_audit(
+    design: Design, models: Mapping[str, ModelResult], *, focus: str | None = None
+) -> dict[str, Diagnostic]:
+    """Audit the fixed-effects estimate against every threat to internal validity.
+
+    Parameters
+    ----------
+    design
+        The common estimation sample (`panelpipe.estimate.make_design`).
+    models
+        The fitted estimators (`panelpipe.estimate.estimate_all`); every check but
+        ``few_clusters`` audits ``models['fixed_effects']``.
+    focus
+        The headline regressor; defaults to the first configured regressor.
+
+    Returns
+    -------
+    dict
+        One `Diagnostic` per key of `DIAGNOSTIC_KEYS`, in that order; a check
+        that cannot run is present with status ``not_run`` and the reason.
+
+    Raises
+    ------
+    ValueError
+        When ``focus`` is not one of the regressors.
+
+    Notes
+    -----
+    Sources, one per check: Oster (2019, *JBES*) for omitted variables;
+    Wooldridge (2010, §10.7.1) for strict exogeneity; Ramsey (1969) for the
+    functional form; Griliches & Hausman (1986, *J. Econometrics*) for
+    measurement error; Nijman & Verbeek (1992) and Wooldridge (2010, §19.9) for
+    attrition; Wooldridge (2010, §10.6.3) for serial correlation; Pesaran (2004,
+    2015) for cross-sectional dependence; Greene, *Econometric Analysis*, for
+    groupwise heteroskedasticity; MacKinnon, Nielsen & Webb (2023, *J.
+    Econometrics*) for few and influential clusters. Wald and t tests use the
+    CR1 cluster-robust covariance with F(q, G-1) and t(G-1) references (Cameron
+    & Miller 2015).
+    """
+    regressors = list(design.settings.regressors)
+    focus = regressors[0] if focus is None else focus
+    if focus not in regressors:
+        raise ValueError(
+            f"focus {focus!r} is not one of the {len(regressors)} regressors "
+            f"({', '.join(regressors)})"
+        )
+    ctx = _context(design, models, focus)
+    out: dict[str, Diagnostic] = {}
+    for key, (check, needs_fe) in _CHECKS.items():
+        if needs_fe and ctx.within is None:
+            out[key] = _not_run(key, ctx.missing)
+            continue
+        try:
+            out[key] = check(ctx)
+        except np.linalg.LinAlgError as exc:
+            out[key] = _not_run(key, f"a matrix in the computation is singular ({exc})")
+    return out
