@@ -7,7 +7,7 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from panelpipe.config import AnalysisSettings
+from panelpipe.config import AnalysisSettings, SourceSpec
 from panelpipe.findings import PanelpipeError
 from panelpipe.ingest import read_panel
 from panelpipe.validate import validate_panel
@@ -49,7 +49,12 @@ def load(tmp_path: Path, *texts: str, s: AnalysisSettings | None = None):
         p = tmp_path / f"delivery_{i}.csv"
         p.write_text(text, encoding="utf-8")
         paths.append(p)
-    return validate_panel(read_panel(paths, s.columns, unit=s.unit), s)
+    return validate_panel(read(paths, s), s)
+
+
+def read(paths: list[Path], s: AnalysisSettings, **options: object) -> pd.DataFrame:
+    specs = [SourceSpec(Path(p), **options) for p in paths]  # type: ignore[arg-type]
+    return read_panel(specs, s.columns, text=[s.unit, s.period])
 
 
 def codes(result, severity: str | None = None) -> set[str]:
@@ -71,7 +76,7 @@ def test_two_deliveries_stack_and_rows_keep_their_origin(tmp_path: Path) -> None
     p1, p2 = tmp_path / "hist.csv", tmp_path / "new.csv"
     p1.write_text(HEADER + good_rows(years=range(2020, 2023)))
     p2.write_text(HEADER + good_rows(years=range(2023, 2024)))
-    raw = read_panel([p1, p2], s.columns, unit="region")
+    raw = read([p1, p2], s)
     assert len(raw) == 16
     assert raw["_source"].iloc[-1] == str(p2) and raw["_line"].iloc[-1] == 5
     assert raw["_line"].iloc[0] == 2  # header is line 1
@@ -84,7 +89,7 @@ def test_parquet_source(tmp_path: Path) -> None:
     frame = pd.read_csv(csv, dtype={"region": str})
     pq = tmp_path / "a.parquet"
     frame.to_parquet(pq)
-    raw = read_panel([pq], s.columns, unit="region")
+    raw = read([pq], s)
     assert raw["_line"].iloc[0] == 1
     assert validate_panel(raw, s).status != "fail"
 
@@ -97,7 +102,7 @@ def test_missing_column_names_file_and_columns(tmp_path: Path) -> None:
         match=r"renamed.csv: column\(s\) 'grant' not found; "
         r"the file has 'region', 'year'",
     ):
-        read_panel([p], settings().columns, unit="region")
+        read([p], settings())
 
 
 def test_duplicate_keys_list_file_and_line(tmp_path: Path) -> None:
@@ -108,12 +113,21 @@ def test_duplicate_keys_list_file_and_line(tmp_path: Path) -> None:
     assert "(002, 2021)" in msg and "delivery_0.csv line 7" in msg and "line 18" in msg
 
 
-def test_same_key_in_two_deliveries_is_a_duplicate(tmp_path: Path) -> None:
+def test_later_delivery_revises_an_earlier_value(tmp_path: Path) -> None:
     result = load(tmp_path, HEADER + good_rows(), HEADER + "001,2023,99,1.5,1\n")
-    assert "duplicate_keys" in codes(result, "error")
-    assert "delivery_1.csv line 2" in next(
-        f.message for f in result.findings if f.code == "duplicate_keys"
-    )
+    f = next(f for f in result.findings if f.code == "revised")
+    assert f.severity == "warning"
+    assert "(001, 2023) jobs:" in f.message and "→ 99" in f.message
+    assert "delivery_0.csv line 5" in f.message
+    row = result.panel[(result.panel.region == "001") & (result.panel.year == 2023)]
+    assert len(row) == 1 and row["jobs"].iloc[0] == 99
+
+
+def test_identical_redelivery_is_kept_once(tmp_path: Path) -> None:
+    first = good_rows()
+    result = load(tmp_path, HEADER + first, HEADER + first.splitlines()[0] + "\n")
+    assert "redelivered" in codes(result, "info")
+    assert len(result.panel) == 16
 
 
 def test_non_numeric_value_lists_rows(tmp_path: Path) -> None:
@@ -169,7 +183,7 @@ def test_input_frame_is_not_modified(tmp_path: Path) -> None:
     s = settings()
     p = tmp_path / "a.csv"
     p.write_text(HEADER + good_rows().replace("001,2021", " 001,2021"))
-    raw = read_panel([p], s.columns, unit="region")
+    raw = read([p], s)
     before = raw.copy()
     validate_panel(raw, s)
     pd.testing.assert_frame_equal(raw, before)

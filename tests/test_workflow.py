@@ -155,7 +155,9 @@ def test_broken_delivery_fails_with_file_and_line(workdir: Path) -> None:
     assert "Traceback" not in result.stderr.split("validation failed")[1].split("\n\n")[0]
     runs = [p for p in (workdir / "out" / "jobs").iterdir() if p.is_dir()]
     assert len(runs) == 1 and not (runs[0] / "report.html").exists()
-    assert (runs[0] / "validation-failed.json").is_file()
+    assert (runs[0] / "validation.json").is_file()
+    page = (runs[0] / "validation.html").read_text()
+    assert "duplicate_keys" in page and "regional_jobs_2025.csv line 42" in page
     assert not (workdir / "out" / "jobs" / "latest").exists()
 
 

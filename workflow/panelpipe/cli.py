@@ -18,10 +18,12 @@ from pathlib import Path
 import yaml
 
 from .changes import compare_runs, render_changes
-from .config import REPO_ROOT, load_config, validate_config
+from .config import REPO_ROOT, analysis_settings, load_config, source_specs, validate_config
 from .findings import PanelpipeError
+from .ingest import read_panel
 from .runs import plan_runs
 from .survey import inspect_file, render_profile
+from .validate import validate_panel
 
 __all__ = ["main"]
 
@@ -88,6 +90,31 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
             "logs/ folder.\n"
         )
     return code
+
+
+def _check(args: argparse.Namespace) -> int:
+    """Ingest and validate every analysis without estimating: a delivery check."""
+    config = load_config(Path(args.config) if args.config else _default_config()[0])
+    status = 0
+    for name in config["analyses"]:
+        settings = analysis_settings(config, name)
+        specs = source_specs(settings.sources, settings.csv, analysis=name)
+        text = list(dict.fromkeys((settings.unit, settings.period, *settings.cluster_by)))
+        try:
+            raw = read_panel(specs, settings.columns, text=text)
+        except PanelpipeError as err:
+            sys.stderr.write(f"panelpipe: analysis {name!r}: {err}\n")
+            status = max(status, 2)
+            continue
+        result = validate_panel(raw, settings)
+        stream = sys.stderr if result.status == "fail" else sys.stdout
+        stream.write(f"{name}: validation {result.status}\n")
+        for f in result.findings:
+            if f.severity != "info" or args.verbose:
+                stream.write(f"  [{f.severity}] {f.code}: {f.message}\n")
+        if result.status == "fail":
+            status = max(status, 1)
+    return status
 
 
 def _inspect(args: argparse.Namespace) -> int:
@@ -164,6 +191,11 @@ def _parser() -> argparse.ArgumentParser:
     run.add_argument("--config", help="configuration file (default: config/config.yaml)")
     run.add_argument("--cores", type=int, default=2, help="cores Snakemake may use (default 2)")
     run.add_argument("--dry-run", action="store_true", help="show what would run, run nothing")
+    chk = sub.add_parser(
+        "check", help="read and validate every analysis's data without estimating"
+    )
+    chk.add_argument("--config", help="configuration file (default: config/config.yaml)")
+    chk.add_argument("--verbose", "-v", action="store_true", help="also list information")
     ins = sub.add_parser("inspect", help="profile a CSV or Parquet file as a panel")
     ins.add_argument("file")
     ins.add_argument("--unit")
@@ -195,6 +227,8 @@ def main(argv: Sequence[str] | None = None) -> int:
             return _run(args, extra)
         if args.command == "inspect":
             return _inspect(args)
+        if args.command == "check":
+            return _check(args)
         if args.command == "init":
             return _init(args)
         return _compare(args)

@@ -23,9 +23,11 @@ __all__ = [
     "REPO_ROOT",
     "SCHEMA_PATH",
     "AnalysisSettings",
+    "SourceSpec",
     "analysis_settings",
     "load_config",
     "resolve_sources",
+    "source_specs",
     "validate_config",
 ]
 
@@ -38,7 +40,7 @@ class AnalysisSettings:
     """The settings of one analysis after defaults are filled in."""
 
     name: str
-    sources: tuple[str, ...]
+    sources: tuple[Any, ...]
     unit: str
     period: str
     outcome: str
@@ -50,6 +52,7 @@ class AnalysisSettings:
     level: float
     gates: Mapping[str, Any]
     bootstrap: Mapping[str, Any] = field(default_factory=dict)
+    csv: Mapping[str, Any] = field(default_factory=dict)
 
     @property
     def columns(self) -> tuple[str, ...]:
@@ -71,6 +74,7 @@ class AnalysisSettings:
             "level": self.level,
             "gates": dict(self.gates),
             "bootstrap": dict(self.bootstrap),
+            "csv": dict(self.csv),
         }
 
 
@@ -205,16 +209,52 @@ def analysis_settings(config: Mapping[str, Any], name: str) -> AnalysisSettings:
         level=float(a["level"]),
         gates=dict(a["gates"]),
         bootstrap=dict(a.get("bootstrap") or {}),
+        csv=dict(a.get("csv") or {}),
     )
 
 
-def resolve_sources(sources: tuple[str, ...] | list[str], *, analysis: str) -> list[Path]:
+def _entry_path(entry: str | Mapping[str, Any]) -> str:
+    return entry if isinstance(entry, str) else str(entry["path"])
+
+
+def resolve_sources(sources: tuple[Any, ...] | list[Any], *, analysis: str) -> list[Path]:
     """Expand globs in order and check that every source exists.
 
     A glob's matches are sorted by name so that yearly files stack in order.
+    Entries are paths or mappings with a ``path`` key (and reading options).
     """
-    paths: list[Path] = []
-    for pattern in sources:
+    return [spec.path for spec in source_specs(sources, {}, analysis=analysis)]
+
+
+@dataclass(frozen=True)
+class SourceSpec:
+    """One file to read, with the CSV options and renames that apply to it."""
+
+    path: Path
+    delimiter: str = ","
+    decimal: str = "."
+    encoding: str = "utf-8"
+    missing: tuple[str, ...] = ("", "NA", "N/A", "n/a", "NaN", "nan", "NULL", "null", ".")
+    rename: Mapping[str, str] = field(default_factory=dict)
+
+
+def source_specs(
+    sources: tuple[Any, ...] | list[Any], csv: Mapping[str, Any], *, analysis: str
+) -> list[SourceSpec]:
+    """Every source file with its reading options (analysis defaults, then per source)."""
+    specs: list[SourceSpec] = []
+    for entry in sources:
+        pattern = _entry_path(entry)
+        options = {**csv, **({} if isinstance(entry, str) else entry)}
+        options.pop("path", None)
+        kwargs: dict[str, Any] = {}
+        for key in ("delimiter", "decimal", "encoding"):
+            if key in options:
+                kwargs[key] = str(options[key])
+        if "missing" in options:
+            kwargs["missing"] = tuple(str(m) for m in options["missing"])
+        if "rename" in options:
+            kwargs["rename"] = dict(options["rename"])
         if glob.has_magic(pattern):
             matches = sorted(glob.glob(pattern))
             if not matches:
@@ -222,7 +262,7 @@ def resolve_sources(sources: tuple[str, ...] | list[str], *, analysis: str) -> l
                     f"analysis {analysis!r}: the source pattern {pattern!r} matches no file "
                     f"(looked from {Path.cwd()}); check the path in 'sources'."
                 )
-            paths.extend(Path(m) for m in matches)
+            specs.extend(SourceSpec(Path(m), **kwargs) for m in matches)
         else:
             path = Path(pattern)
             if not path.is_file():
@@ -230,17 +270,20 @@ def resolve_sources(sources: tuple[str, ...] | list[str], *, analysis: str) -> l
                     f"analysis {analysis!r}: the source file {pattern!r} does not exist "
                     f"(looked from {Path.cwd()}); check the path in 'sources'."
                 )
-            paths.append(path)
+            specs.append(SourceSpec(path, **kwargs))
     suffixes = {".csv", ".parquet", ".pq", ".txt", ".tsv"}
-    for p in paths:
+    for spec in specs:
+        p = spec.path
         if p.suffix.lower() not in suffixes and not p.name.lower().endswith(".csv.gz"):
             raise PanelpipeError(
                 f"analysis {analysis!r}: {p} is neither CSV nor Parquet "
-                "(expected a name ending in .csv, .csv.gz or .parquet)."
+                "(expected a name ending in .csv, .csv.gz, .tsv, .txt or .parquet)."
             )
-    if len(set(map(str, paths))) != len(paths):
-        dup = sorted({str(p) for p in paths if list(map(str, paths)).count(str(p)) > 1})
+    names = [str(s.path) for s in specs]
+    repeated = sorted({n for n in names if names.count(n) > 1})
+    if repeated:
         raise PanelpipeError(
-            f"analysis {analysis!r}: the same file is listed twice in 'sources': {', '.join(dup)}."
+            f"analysis {analysis!r}: the same file is listed twice in 'sources': "
+            f"{', '.join(repeated)}."
         )
-    return paths
+    return specs

@@ -31,6 +31,7 @@ __all__ = [
     "paper_tables",
     "recommend",
     "render_html",
+    "render_validation_page",
     "results_document",
 ]
 
@@ -374,3 +375,8 @@ def render_html(context: Mapping[str, Any]) -> str:
     context.setdefault("estimator_labels", ESTIMATOR_LABELS)
     context.setdefault("inference_labels", INFERENCE_LABELS)
     return _ENV.get_template("report.html.j2").render(**context)
+
+
+def render_validation_page(context: Mapping[str, Any]) -> str:
+    """The page written for a run that failed validation."""
+    return _ENV.get_template("validation.html.j2").render(**context)

@@ -22,7 +22,7 @@ import yaml
 from . import __version__
 from .changes import diff_runs, history, previous_run
 from .compare import TestResult, run_comparisons
-from .config import AnalysisSettings, analysis_settings, resolve_sources
+from .config import AnalysisSettings, analysis_settings, source_specs
 from .estimate import INTERCEPT, ModelResult, estimate_all, make_design
 from .findings import Finding, PanelpipeError
 from .ingest import read_panel
@@ -34,6 +34,7 @@ from .report import (
     presence_figure,
     recommend,
     render_html,
+    render_validation_page,
     results_document,
     variance_share_figure,
 )
@@ -66,12 +67,17 @@ def _read_json(path: Path | str) -> Any:
 
 def ingest_step(settings: AnalysisSettings, panel_out: str, sources_out: str) -> None:
     """Read and stack the sources; record each file's hash and row count."""
-    paths = resolve_sources(settings.sources, analysis=settings.name)
-    panel = read_panel(paths, settings.columns, unit=settings.unit)
+    specs = source_specs(settings.sources, settings.csv, analysis=settings.name)
+    text = list(dict.fromkeys((settings.unit, settings.period, *settings.cluster_by)))
+    panel = read_panel(specs, settings.columns, text=text)
     counts = panel["_source"].value_counts(sort=False)
     sources = [
-        {"path": str(p), "sha256": file_digest(p), "rows": int(counts.get(str(p), 0))}
-        for p in paths
+        {
+            "path": str(spec.path),
+            "sha256": file_digest(spec.path),
+            "rows": int(counts.get(str(spec.path), 0)),
+        }
+        for spec in specs
     ]
     Path(panel_out).parent.mkdir(parents=True, exist_ok=True)
     panel.to_parquet(panel_out, index=False)
@@ -86,13 +92,25 @@ def validate_step(
     result = validate_panel(raw, settings)
     doc = {"analysis": settings.name, **result.to_dict()}
     if result.status == "fail":
-        # Kept beside the run (not a declared output) so the failed attempt can be read.
-        _write_json(Path(validation_out).parent.parent / "validation-failed.json", doc)
+        # Kept beside the run (not declared outputs, which a failed job loses) so that
+        # the failed attempt can be read; report.html is never written.
+        run_dir = Path(validation_out).parent.parent
+        _write_json(run_dir / "validation.json", doc)
+        atomic_write_text(
+            run_dir / "validation.html",
+            render_validation_page({
+                "analysis": settings.name,
+                "run_id": run_dir.name,
+                "created": dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat(),
+                "findings": result.findings,
+                "sources": sorted({str(x) for x in raw["_source"].unique()}),
+            }),
+        )
         errors = [f for f in result.findings if f.severity == "error"]
         lines = "\n".join(f"  - [{f.code}] {f.message}" for f in errors)
         raise PanelpipeError(
             f"analysis {settings.name!r}: validation failed with {len(errors)} error(s); "
-            f"nothing was estimated:\n{lines}",
+            f"nothing was estimated:\n{lines}\nThe findings are in {run_dir}/validation.html.",
             errors,
         )
     result.panel.to_parquet(panel_out, index=False)

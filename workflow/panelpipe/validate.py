@@ -3,6 +3,14 @@
 Every problem becomes a `Finding` with a stable code. Errors stop the run before
 any estimation; warnings and information travel into the report. All checks are
 vectorised: no Python loop runs over rows.
+
+Finding codes (stable): ``unit_whitespace``, ``missing_unit``, ``missing_period``,
+``bad_period``, ``mixed_period_formats``, ``duplicate_keys``, ``redelivered``,
+``revised``, ``missing_cluster``, ``non_numeric``, ``non_finite``, ``balance``,
+``gaps``, ``entry_exit``, ``singleton_units``, ``too_few_units``,
+``too_few_periods``, ``missing_values``, ``rows_dropped``, ``rows_per_estimator``,
+``constant_regressor``, ``time_invariant_regressor``, ``low_within_variation``,
+``too_few_clusters``, ``few_clusters``.
 """
 
 from __future__ import annotations
@@ -16,12 +24,17 @@ import pandas as pd
 from .config import AnalysisSettings
 from .findings import Finding, Severity, worst_status
 from .ingest import LINE, SOURCE
+from .periods import label_of, parse_periods
 
-__all__ = ["FEW_CLUSTERS", "ValidationResult", "validate_panel"]
+__all__ = ["FEW_CLUSTERS", "LOW_WITHIN_SHARE", "ValidationResult", "validate_panel"]
 
 #: Common practice, no single source: below roughly 30-50 clusters the
 #: cluster-robust standard error is unreliable.
 FEW_CLUSTERS = 30
+
+#: Below this share of within-unit variance a regressor gives fixed effects
+#: little to work with and measurement error weighs more (Griliches & Hausman 1986).
+LOW_WITHIN_SHARE = 0.05
 
 _LISTED = 10  # how many offending rows or keys a message quotes
 
@@ -59,113 +72,220 @@ def _places(panel: pd.DataFrame, mask: pd.Series) -> tuple[str, list[dict[str, A
     return text, records
 
 
+def _error(
+    out: list[Finding],
+    panel: pd.DataFrame,
+    mask: pd.Series,
+    code: str,
+    what: str,
+    todo: str,
+    column: str,
+) -> None:
+    text, records = _places(panel, mask)
+    out.append(
+        Finding(
+            code,
+            "error",
+            f"{int(mask.sum())} row(s) {what}: {text}. {todo}",
+            {"column": column, "rows": records},
+        )
+    )
+
+
+def _check_units(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> pd.DataFrame:
+    changes: dict[str, pd.Series] = {}
+    for col in dict.fromkeys((s.unit, *s.cluster_by)):
+        raw = panel[col].astype("string")
+        stripped = raw.str.strip()
+        changed = (stripped != raw).fillna(False).astype(bool)
+        if changed.any() and col == s.unit:
+            text, records = _places(panel, changed)
+            out.append(
+                Finding(
+                    "unit_whitespace",
+                    "warning",
+                    f"{int(changed.sum())} value(s) of unit column {col!r} had leading or "
+                    f"trailing spaces, removed before matching units: {text}.",
+                    {"column": col, "rows": records},
+                )
+            )
+        empty = (stripped.isna() | (stripped == "")).astype(bool)
+        if empty.any():
+            code = "missing_unit" if col == s.unit else "missing_cluster"
+            _error(
+                out,
+                panel,
+                empty,
+                code,
+                f"have no value in column {col!r}",
+                "Fill in the value or remove the rows.",
+                col,
+            )
+        changes[col] = stripped
+    return panel.assign(**changes)
+
+
+def _check_periods(
+    panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]
+) -> tuple[pd.DataFrame, str]:
+    parsed = parse_periods(panel[s.period])
+    if parsed.mixed:
+        counts = parsed.form[parsed.form != ""].value_counts()
+        minority = parsed.form != counts.index[0]
+        _error(
+            out,
+            panel,
+            minority,
+            "mixed_period_formats",
+            f"write column {s.period!r} differently from the majority "
+            f"({', '.join(f'{k}: {v}' for k, v in counts.items())})",
+            "Write every period the same way (e.g. all 2021, or all 2021Q1).",
+            s.period,
+        )
+        return panel, "mixed"
+    missing = panel[s.period].isna()
+    if missing.any():
+        _error(
+            out,
+            panel,
+            missing,
+            "missing_period",
+            f"have no value in period column {s.period!r}",
+            "Fill in the period or remove the rows.",
+            s.period,
+        )
+    bad = parsed.bad & ~missing
+    if bad.any():
+        sample = ", ".join(repr(str(v)) for v in panel.loc[bad, s.period].head(3))
+        _error(
+            out,
+            panel,
+            bad,
+            "bad_period",
+            f"have a period in column {s.period!r} that is not a whole number, a date "
+            f"(2021-03-31), a year-quarter (2021Q1) or a year-month (2021-03) (e.g. {sample})",
+            "Correct the periods.",
+            s.period,
+        )
+    if missing.any() or bad.any():
+        return panel, parsed.frequency
+    return panel.assign(**{s.period: parsed.ordinal.astype("int64")}), parsed.frequency
+
+
 def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> pd.DataFrame:
-    unit = panel[s.unit].str.strip()
-    changed = (unit != panel[s.unit]).fillna(False)
-    if changed.any():
-        text, records = _places(panel, changed)
+    """Duplicates within a file are errors; a later file re-delivering a key replaces it."""
+    keys = [s.unit, s.period]
+    within = panel.duplicated([*keys, SOURCE], keep=False)
+    if within.any():
+        rows = panel.loc[within, [*keys, SOURCE, LINE]].head(2 * _LISTED)
+        records = [
+            {"unit": str(u), "period": str(p), "file": str(f), "line": int(n)}
+            for u, p, f, n in zip(
+                rows[s.unit], rows[s.period], rows[SOURCE], rows[LINE], strict=True
+            )
+        ]
+        text = "; ".join(
+            f"({r['unit']}, {r['period']}) at {r['file']} line {r['line']}" for r in records
+        )
+        n_keys = int(panel.loc[within].drop_duplicates([*keys, SOURCE]).shape[0])
         out.append(
             Finding(
-                "unit_whitespace",
+                "duplicate_keys",
+                "error",
+                f"{n_keys} unit-period key(s) appear more than once in the same file: {text}. "
+                "Each unit may have one row per period; remove the repeats or fix the keys.",
+                {"keys": records},
+            )
+        )
+        return panel
+    again = panel.duplicated(keys, keep=False)
+    if not again.any():
+        return panel
+    values = [c for c in dict.fromkeys((s.outcome, *s.regressors, *s.cluster_by)) if c not in keys]
+    group = panel.loc[again, [*keys, *values, SOURCE, LINE]]
+    last = group.groupby(keys, sort=False)[values].transform("last")
+    differs = ~((group[values] == last) | (group[values].isna() & last.isna()))
+    revised_rows = differs.any(axis=1)
+    n_keys = int(group.drop_duplicates(keys).shape[0])
+    if revised_rows.any():
+        cells = differs.loc[revised_rows].stack()
+        cells = cells[cells]
+        records = []
+        for row, col in cells.index[:_LISTED]:
+            records.append(
+                {
+                    "unit": str(group.at[row, s.unit]),
+                    "period": str(group.at[row, s.period]),
+                    "column": str(col),
+                    "old": str(group.at[row, col]),
+                    "new": str(last.at[row, col]),
+                    "file": str(group.at[row, SOURCE]),
+                    "line": int(group.at[row, LINE]),
+                }
+            )
+        text = "; ".join(
+            f"({r['unit']}, {r['period']}) {r['column']}: {r['old']} → {r['new']} "
+            f"(earlier value at {r['file']} line {r['line']})"
+            for r in records
+        )
+        out.append(
+            Finding(
+                "revised",
                 "warning",
-                f"{int(changed.sum())} value(s) of unit column {s.unit!r} had leading or trailing "
-                f"spaces, removed before matching units: {text}.",
-                {"column": s.unit, "rows": records},
-            )
-        )
-        panel = panel.assign(**{s.unit: unit})
-    missing_unit = panel[s.unit].isna() | (panel[s.unit] == "")
-    if missing_unit.any():
-        text, records = _places(panel, missing_unit)
-        out.append(
-            Finding(
-                "missing_unit",
-                "error",
-                f"{int(missing_unit.sum())} row(s) have no value in unit column {s.unit!r}: "
-                f"{text}. Fill in the unit or remove the rows.",
-                {"column": s.unit, "rows": records},
-            )
-        )
-    raw_period = panel[s.period]
-    period = pd.to_numeric(raw_period, errors="coerce")
-    bad_period = period.isna() | ~np.isfinite(period.astype("float64").fillna(0.0))
-    if not bad_period.any():
-        bad_period = period.astype("float64") != np.floor(period.astype("float64"))
-    if bad_period.any():
-        text, records = _places(panel, bad_period)
-        out.append(
-            Finding(
-                "bad_period",
-                "error",
-                f"{int(bad_period.sum())} row(s) have a missing or non-integer period in column "
-                f"{s.period!r}: {text}. Periods must be whole numbers such as years.",
-                {"column": s.period, "rows": records},
+                f"{len(cells)} value(s) delivered earlier were revised by a later file and "
+                f"the later value is used: {text}.",
+                {"cells": records, "count": len(cells)},
             )
         )
     else:
-        panel = panel.assign(**{s.period: period.astype("int64")})
-    if not (missing_unit.any() or bad_period.any()):
-        dup = panel.duplicated([s.unit, s.period], keep=False)
-        if dup.any():
-            keys = panel.loc[dup, [s.unit, s.period, SOURCE, LINE]].head(2 * _LISTED)
-            records = [
-                {"unit": str(u), "period": int(p), "file": str(f), "line": int(n)}
-                for u, p, f, n in zip(
-                    keys[s.unit], keys[s.period], keys[SOURCE], keys[LINE], strict=True
-                )
-            ]
-            text = "; ".join(
-                f"({r['unit']}, {r['period']}) at {r['file']} line {r['line']}" for r in records
+        out.append(
+            Finding(
+                "redelivered",
+                "info",
+                f"{n_keys} unit-period key(s) were delivered again in a later file with the "
+                "same values; each is used once.",
             )
-            n_keys = int(panel.loc[dup].drop_duplicates([s.unit, s.period]).shape[0])
-            out.append(
-                Finding(
-                    "duplicate_keys",
-                    "error",
-                    f"{n_keys} unit-period key(s) appear more than once: {text}. "
-                    "Each unit may have one row per period; remove the repeats or fix the keys.",
-                    {"keys": records},
-                )
-            )
-    return panel
+        )
+    return panel.drop_duplicates(keys, keep="last")
 
 
 def _check_numeric(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> pd.DataFrame:
-    numeric = dict.fromkeys((s.outcome, *s.regressors))
     converted: dict[str, pd.Series] = {}
-    for col in numeric:
+    for col in dict.fromkeys((s.outcome, *s.regressors)):
         raw = panel[col]
         values = pd.to_numeric(raw, errors="coerce").astype("float64")
         not_number = values.isna() & raw.notna()
         if not_number.any():
-            text, records = _places(panel, not_number)
             sample = ", ".join(repr(str(v)) for v in raw[not_number].head(3))
-            out.append(
-                Finding(
-                    "non_numeric",
-                    "error",
-                    f"column {col!r} must be numeric but {int(not_number.sum())} value(s) are not "
-                    f"(e.g. {sample}): {text}. Correct the values or leave them empty for missing.",
-                    {"column": col, "rows": records},
-                )
+            _error(
+                out,
+                panel,
+                not_number,
+                "non_numeric",
+                f"hold text where column {col!r} needs a number (e.g. {sample})",
+                "Correct the values, leave them empty for missing, or list the marker "
+                "under csv.missing.",
+                col,
             )
         infinite = pd.Series(np.isinf(values.to_numpy()), index=values.index)
         if infinite.any():
-            text, records = _places(panel, infinite)
-            out.append(
-                Finding(
-                    "non_finite",
-                    "error",
-                    f"column {col!r} holds {int(infinite.sum())} infinite value(s): {text}.",
-                    {"column": col, "rows": records},
-                )
+            _error(
+                out,
+                panel,
+                infinite,
+                "non_finite",
+                f"hold an infinite value in column {col!r}",
+                "Correct the values.",
+                col,
             )
         converted[col] = values
     return panel.assign(**converted)
 
 
-def _summarise(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> dict[str, Any]:
-    units = panel[s.unit].nunique()
+def _summarise(
+    panel: pd.DataFrame, s: AnalysisSettings, frequency: str, out: list[Finding]
+) -> dict[str, Any]:
+    units = int(panel[s.unit].nunique())
     periods = np.sort(panel[s.period].unique())
     n_periods = len(periods)
     per_unit = panel.groupby(s.unit, observed=True)[s.period].agg(["count", "min", "max"])
@@ -173,68 +293,84 @@ def _summarise(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> 
     balanced = complete == units
     span = per_unit["max"] - per_unit["min"] + 1
     gaps = int((span - per_unit["count"]).clip(lower=0).sum())
+    first, last = (int(periods[0]), int(periods[-1])) if n_periods else (None, None)
     summary: dict[str, Any] = {
         "rows": len(panel),
-        "units": int(units),
+        "units": units,
         "periods": int(n_periods),
-        "first_period": str(periods[0]) if n_periods else None,
-        "last_period": str(periods[-1]) if n_periods else None,
+        "frequency": frequency,
+        "first_period": label_of(first, frequency) if first is not None else None,
+        "last_period": label_of(last, frequency) if last is not None else None,
         "balanced": bool(balanced),
         "complete_units": complete,
         "complete_share": complete / units if units else 0.0,
         "gaps": gaps,
+        "period_labels": {str(int(p)): label_of(int(p), frequency) for p in periods},
     }
     if balanced:
-        out.append(
-            Finding(
-                "balance", "info", f"The panel is balanced: {units} units × {n_periods} periods."
-            )
-        )
+        msg = f"The panel is balanced: {units} units × {n_periods} periods ({frequency})."
     else:
+        msg = (
+            f"The panel is unbalanced: {complete} of {units} units are observed in all "
+            f"{n_periods} periods ({frequency})."
+        )
+    out.append(Finding("balance", "info", msg, {"complete_share": summary["complete_share"]}))
+    if gaps:
+        holes = int(((span - per_unit["count"]) > 0).sum())
         out.append(
             Finding(
-                "balance",
+                "gaps",
                 "info",
-                f"The panel is unbalanced: {complete} of {units} units are observed in all "
-                f"{n_periods} periods; {gaps} unit-period(s) are missing inside units' spans.",
+                f"{gaps} unit-period(s) are missing inside the observed span of "
+                f"{holes} unit(s); first differences are not formed across them.",
+                {"gaps": gaps, "units": holes},
             )
         )
+    if first is not None:
+        entered = int((per_unit["min"] > first).sum())
+        left = int((per_unit["max"] < last).sum())
+        if entered or left:
+            out.append(
+                Finding(
+                    "entry_exit",
+                    "info",
+                    f"{entered} unit(s) enter after the first period and {left} "
+                    "leave before the last; see the attrition check of the audit.",
+                    {"entered": entered, "left": left},
+                )
+            )
     singletons = int((per_unit["count"] == 1).sum())
     if singletons:
         out.append(
             Finding(
                 "singleton_units",
                 "warning",
-                f"{singletons} unit(s) are observed in one period only; they carry no information "
-                "for fixed effects or first differences.",
+                f"{singletons} unit(s) are observed in one period only; they carry "
+                "no information for fixed effects or first differences.",
             )
         )
-    if units < int(s.gates.get("min_units", 2)):
-        out.append(
-            Finding(
-                "too_few_units",
-                "error",
-                f"the panel has {units} unit(s) in column {s.unit!r}; at least "
-                f"{s.gates.get('min_units', 2)} are needed (gate min_units).",
+    for code, n, key, col in (
+        ("too_few_units", units, "min_units", s.unit),
+        ("too_few_periods", int(n_periods), "min_periods", s.period),
+    ):
+        least = int(s.gates.get(key, 2))
+        if n < least:
+            out.append(
+                Finding(
+                    code,
+                    "error",
+                    f"the panel has {n} distinct value(s) in column {col!r}; at least "
+                    f"{least} are needed (gate {key}).",
+                    {"column": col},
+                )
             )
-        )
-    if n_periods < int(s.gates.get("min_periods", 2)):
-        out.append(
-            Finding(
-                "too_few_periods",
-                "error",
-                f"the panel has {n_periods} period(s) in column {s.period!r}; at least "
-                f"{s.gates.get('min_periods', 2)} are needed (gate min_periods).",
-            )
-        )
     return summary
 
 
 def _check_missing(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> None:
-    model_cols = [s.outcome, *s.regressors]
+    model_cols = list(dict.fromkeys((s.outcome, *s.regressors)))
     missing = panel[model_cols].isna()
-    counts = missing.sum()
-    for col, n in counts.items():
+    for col, n in missing.sum().items():
         if n:
             out.append(
                 Finding(
@@ -244,39 +380,64 @@ def _check_missing(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding])
                     {"column": str(col), "count": int(n)},
                 )
             )
-    dropped = int(missing.any(axis=1).sum())
+    complete = ~missing.any(axis=1)
+    dropped = int((~complete).sum())
     share = dropped / len(panel) if len(panel) else 0.0
     limit = float(s.gates.get("max_dropped_share", 0.5))
     if dropped:
         severity: Severity = "error" if share > limit else "info"
+        tail = f", more than the gate max_dropped_share={limit}." if severity == "error" else "."
         out.append(
             Finding(
                 "rows_dropped",
                 severity,
-                f"{dropped} row(s) ({share:.1%}) have a missing outcome or regressor and are left "
-                f"out of every estimator"
-                + (
-                    f", more than the gate max_dropped_share={limit}."
-                    if severity == "error"
-                    else "."
-                ),
+                f"{dropped} row(s) ({share:.1%}) have a missing outcome or regressor "
+                f"and are left out of every estimator{tail}",
                 {"count": dropped, "share": share},
             )
         )
+    kept = panel.loc[complete, [s.unit, s.period]]
+    unit_codes = pd.factorize(kept[s.unit])[0]
+    order = np.lexsort((kept[s.period].to_numpy(), unit_codes))
+    u, t = unit_codes[order], kept[s.period].to_numpy()[order]
+    periods = np.sort(np.unique(t))
+    pos = np.searchsorted(periods, t)
+    fd = int(((u[1:] == u[:-1]) & (pos[1:] == pos[:-1] + 1)).sum())
+    counts = {
+        "pooled_ols": len(kept),
+        "fixed_effects": len(kept),
+        "random_effects": len(kept),
+        "correlated_random_effects": len(kept),
+        "first_difference": fd,
+        "between": int(kept[s.unit].nunique()),
+    }
+    wanted = {k: v for k, v in counts.items() if k in s.estimators}
+    out.append(
+        Finding(
+            "rows_per_estimator",
+            "info",
+            "rows each estimator will use: "
+            + ", ".join(f"{k} {v}" for k, v in wanted.items())
+            + " (first differences lose each unit's first period and the periods "
+            "after a gap; between uses one row per unit).",
+            {"rows": wanted},
+        )
+    )
 
 
 def _check_regressors(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> None:
+    groups = panel[s.unit]
     for col in s.regressors:
         x = panel[col]
         total = float(x.var(ddof=0)) if x.notna().sum() > 1 else 0.0
-        within = float((x - x.groupby(panel[s.unit]).transform("mean")).var(ddof=0))
-        if total == 0.0:
+        within = float((x - x.groupby(groups).transform("mean")).var(ddof=0))
+        if total == 0.0 or not np.isfinite(total):
             out.append(
                 Finding(
                     "constant_regressor",
                     "error",
-                    f"regressor {col!r} takes one value in every row; no estimator can use it. "
-                    "Remove it from the regressors.",
+                    f"regressor {col!r} takes one value in every row; no estimator "
+                    "can use it. Remove it from the regressors.",
                     {"column": col},
                 )
             )
@@ -285,9 +446,20 @@ def _check_regressors(panel: pd.DataFrame, s: AnalysisSettings, out: list[Findin
                 Finding(
                     "time_invariant_regressor",
                     "info",
-                    f"regressor {col!r} does not change within units; fixed effects and first "
-                    "differences cannot estimate it and leave it out.",
+                    f"regressor {col!r} does not change within units; fixed effects "
+                    "and first differences cannot estimate it and leave it out.",
                     {"column": col},
+                )
+            )
+        elif within / total < LOW_WITHIN_SHARE:
+            out.append(
+                Finding(
+                    "low_within_variation",
+                    "warning",
+                    f"only {within / total:.1%} of the variance of {col!r} is within "
+                    "units; fixed effects rest on little variation and any "
+                    "measurement error in it weighs heavily.",
+                    {"column": col, "within_share": within / total},
                 )
             )
 
@@ -302,9 +474,10 @@ def _check_clusters(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]
                 Finding(
                     "too_few_clusters",
                     "error",
-                    f"cluster column {col!r} has {g} distinct value(s); at least {least} are "
-                    "needed (gate min_clusters; 2 at the very least, about 30 to be reliable). "
-                    "Choose another column in 'cluster_by' or lower the gate.",
+                    f"cluster column {col!r} has {g} distinct value(s); at least "
+                    f"{least} are needed (gate min_clusters; 2 at the very least, "
+                    "about 30 to be reliable). Choose another column in 'cluster_by' "
+                    "or lower the gate.",
                     {"column": col, "clusters": g},
                 )
             )
@@ -313,9 +486,10 @@ def _check_clusters(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]
                 Finding(
                     "few_clusters",
                     "warning",
-                    f"only {g} clusters in {col!r} (smallest {int(sizes.min())} rows, largest "
-                    f"{int(sizes.max())}); cluster-robust standard errors are unreliable below "
-                    f"about {FEW_CLUSTERS} clusters, so the wild cluster bootstrap is reported.",
+                    f"only {g} clusters in {col!r} (smallest {int(sizes.min())} rows, "
+                    f"largest {int(sizes.max())}); cluster-robust standard errors "
+                    f"are unreliable below about {FEW_CLUSTERS} clusters, so the "
+                    "wild cluster bootstrap is reported.",
                     {"column": col, "clusters": g},
                 )
             )
@@ -327,16 +501,22 @@ def validate_panel(raw: pd.DataFrame, settings: AnalysisSettings) -> ValidationR
     Returns
     -------
     ValidationResult
-        The panel with typed columns (unit as stripped text, period as integer,
-        outcome and regressors as float64, NaN where missing), sorted by unit and
-        period, plus the findings and a summary. The input is not modified.
+        The panel with typed columns (unit and cluster columns as stripped text,
+        period as an integer ordinal on its detected frequency, outcome and
+        regressors as float64, NaN where missing), one row per unit-period (a
+        later delivery replaces an earlier one), sorted by unit and period, plus
+        the findings and a summary. The input is not modified.
     """
     findings: list[Finding] = []
-    panel = _check_keys(raw, settings, findings)
+    panel = _check_units(raw, settings, findings)
+    panel, frequency = _check_periods(panel, settings, findings)
     panel = _check_numeric(panel, settings, findings)
     if any(f.severity == "error" for f in findings):
         return ValidationResult(panel, tuple(findings), {"rows": len(panel)})
-    summary = _summarise(panel, settings, findings)
+    panel = _check_keys(panel, settings, findings)
+    if any(f.severity == "error" for f in findings):
+        return ValidationResult(panel, tuple(findings), {"rows": len(panel)})
+    summary = _summarise(panel, settings, frequency, findings)
     _check_missing(panel, settings, findings)
     _check_regressors(panel, settings, findings)
     _check_clusters(panel, settings, findings)
