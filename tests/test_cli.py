@@ -1,0 +1,86 @@
+"""The command line: inspect and init on the demo data, compare's errors."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+import yaml
+
+from panelpipe.cli import main
+from panelpipe.config import REPO_ROOT, validate_config
+
+HISTORY = REPO_ROOT / "config" / "demo" / "regional_jobs_2011_2024.csv"
+
+
+def test_inspect_finds_unit_and_period_of_the_demo(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["inspect", str(HISTORY), "--json"]) == 0
+    profile = json.loads(capsys.readouterr().out)
+    assert profile["rows"] == 554
+    assert profile["unit_candidates"][0] == "region"
+    assert profile["period_candidates"] == ["year"]
+    assert profile["panel"]["units"] == 40 and profile["panel"]["periods"] == 14
+    assert profile["panel"]["gaps"] == 6 and profile["panel"]["duplicate_keys"] == 0
+    assert main(["inspect", str(HISTORY)]) == 0
+    assert "as a panel of region × year: 40 units, 14 periods" in capsys.readouterr().out
+
+
+def test_inspect_reports_a_missing_file(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["inspect", "nowhere.csv"]) == 2
+    assert "nowhere.csv: no such file" in capsys.readouterr().err
+
+
+def test_init_writes_a_valid_config_and_never_overwrites(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    out = tmp_path / "jobs.yaml"
+    args = [
+        "init",
+        str(HISTORY),
+        "--unit",
+        "region",
+        "--period",
+        "year",
+        "--outcome",
+        "youth_employment",
+        "-o",
+        str(out),
+    ]
+    assert main(args) == 0
+    config = yaml.safe_load(out.read_text())
+    validate_config(config)
+    analysis = next(iter(config["analyses"].values()))
+    assert analysis["regressors"] == [
+        "subsidy_rate",
+        "broadband_share",
+        "log_median_wage",
+        "coastal",
+    ]
+    before = out.read_bytes()
+    assert main(args) == 2
+    assert "already exists" in capsys.readouterr().err
+    assert out.read_bytes() == before
+
+
+def test_init_rejects_an_unknown_column(capsys: pytest.CaptureFixture[str]) -> None:
+    assert (
+        main(["init", str(HISTORY), "--unit", "region", "--period", "year", "--outcome", "jobs"])
+        == 2
+    )
+    assert "column 'jobs' not found" in capsys.readouterr().err
+
+
+def test_compare_rejects_a_folder_that_is_not_a_run(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    assert main(["compare", str(tmp_path), str(tmp_path)]) == 2
+    assert "not a completed run folder" in capsys.readouterr().err
+
+
+def test_check_passes_on_the_demo(
+    capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.chdir(REPO_ROOT)
+    assert main(["check"]) == 0
+    assert "regional_jobs: validation pass" in capsys.readouterr().out
