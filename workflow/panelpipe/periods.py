@@ -52,7 +52,31 @@ def _text(values: pd.Series) -> pd.Series:
 
 
 def parse_periods(values: pd.Series) -> ParsedPeriods:
-    """Read a period column of any dtype (numbers, dates or text)."""
+    """Read a period column of any dtype (numbers, dates or text).
+
+    The distinct values are parsed once and the results spread back to the rows,
+    so the cost is one factorisation of the column whatever its length.
+    """
+    codes, uniques = pd.factorize(values, use_na_sentinel=True)
+    distinct = _parse_distinct(pd.Series(uniques, dtype=values.dtype))
+    take = np.where(codes < 0, len(uniques), codes)
+
+    def spread(column: pd.Series, fill: object) -> pd.Series:
+        extended = pd.concat(
+            [column.reset_index(drop=True), pd.Series([fill], dtype=column.dtype)],
+            ignore_index=True,
+        )
+        return pd.Series(extended.to_numpy()[take], index=values.index, dtype=column.dtype)
+
+    return ParsedPeriods(
+        spread(distinct.ordinal, pd.NA),
+        distinct.frequency,
+        spread(distinct.form, ""),
+        spread(distinct.bad, True).astype(bool),
+    )
+
+
+def _parse_distinct(values: pd.Series) -> ParsedPeriods:
     text = _text(values)
     form = pd.Series("", index=values.index, dtype="object")
     for name, pattern in _FORMS.items():

@@ -95,9 +95,19 @@ def _error(
 def _check_units(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> pd.DataFrame:
     changes: dict[str, pd.Series] = {}
     for col in dict.fromkeys((s.unit, *s.cluster_by)):
+        # Work on the distinct values only, and keep the result categorical so that
+        # later grouping, sorting and duplicate checks use integer codes.
         raw = panel[col].astype("string")
-        stripped = raw.str.strip()
-        changed = (stripped != raw).fillna(False).astype(bool)
+        codes, uniques = pd.factorize(raw, use_na_sentinel=True)
+        original = pd.Series(uniques, dtype="string")
+        cleaned = original.str.strip()
+        categories = pd.Index(cleaned.dropna().unique()).sort_values()
+        remap = np.append(categories.get_indexer(cleaned), -1)
+        stripped = pd.Series(
+            pd.Categorical.from_codes(remap[codes], categories=categories), index=raw.index
+        )
+        differs = np.append((cleaned != original).fillna(False).to_numpy(dtype=bool), False)
+        changed = pd.Series(differs[codes], index=raw.index)
         if changed.any() and col == s.unit:
             text, records = _places(panel, changed)
             out.append(
@@ -109,7 +119,7 @@ def _check_units(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -
                     {"column": col, "rows": records},
                 )
             )
-        empty = (stripped.isna() | (stripped == "")).astype(bool)
+        empty = (stripped.isna() | (stripped == "")).fillna(True).astype(bool)
         if empty.any():
             code = "missing_unit" if col == s.unit else "missing_cluster"
             _error(
@@ -175,7 +185,14 @@ def _check_periods(
 def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> pd.DataFrame:
     """Duplicates within a file are errors; a later file re-delivering a key replaces it."""
     keys = [s.unit, s.period]
-    within = panel.duplicated([*keys, SOURCE], keep=False)
+    # One int64 key per row (unit code, period rank, file code): hashing integers is
+    # far cheaper than hashing a text column once per check.
+    unit_code = pd.Series(panel[s.unit]).cat.codes.to_numpy(dtype=np.int64)
+    period_rank = pd.factorize(panel[s.period])[0].astype(np.int64)
+    file_code = pd.Series(panel[SOURCE]).astype("category").cat.codes.to_numpy(dtype=np.int64)
+    key = unit_code * (int(period_rank.max(initial=0)) + 1) + period_rank
+    n_files = int(file_code.max(initial=0)) + 1
+    within = pd.Series(key * n_files + file_code, index=panel.index).duplicated(keep=False)
     if within.any():
         rows = panel.loc[within, [*keys, SOURCE, LINE]].head(2 * _LISTED)
         records = [
@@ -198,7 +215,7 @@ def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) ->
             )
         )
         return panel
-    again = panel.duplicated(keys, keep=False)
+    again = pd.Series(key, index=panel.index).duplicated(keep=False)
     if not again.any():
         return panel
     values = [c for c in dict.fromkeys((s.outcome, *s.regressors, *s.cluster_by)) if c not in keys]
