@@ -191,9 +191,7 @@ def _parser() -> argparse.ArgumentParser:
     run.add_argument("--config", help="configuration file (default: config/config.yaml)")
     run.add_argument("--cores", type=int, default=2, help="cores Snakemake may use (default 2)")
     run.add_argument("--dry-run", action="store_true", help="show what would run, run nothing")
-    chk = sub.add_parser(
-        "check", help="read and validate every analysis's data without estimating"
-    )
+    chk = sub.add_parser("check", help="read and validate every analysis's data without estimating")
     chk.add_argument("--config", help="configuration file (default: config/config.yaml)")
     chk.add_argument("--verbose", "-v", action="store_true", help="also list information")
     ins = sub.add_parser("inspect", help="profile a CSV or Parquet file as a panel")

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
+from functools import cached_property
 from types import MappingProxyType
 from typing import Any, Literal
 
@@ -162,26 +163,61 @@ def _not_run(key: str, reason: str) -> Diagnostic:
 
 @dataclass(frozen=True)
 class _Fit:
-    """Least squares with a CR1 cluster-robust covariance."""
+    r"""Least squares with cluster-robust covariances.
+
+    ``cov`` is CR1, as in the estimation stage. The tests of the audit use the
+    CV3 jackknife, :math:`\hat V_3 = \frac{G-1}{G}\sum_g(\hat\beta^{(g)}-\hat\beta)
+    (\hat\beta^{(g)}-\hat\beta)'`, which MacKinnon, Nielsen & Webb (2023)
+    find far more reliable than CR1 when some observations have high leverage
+    (the cubes of the RESET-type test, an indicator that changes in a few
+    clusters); CR1 is the fallback when a leave-one-out fit is singular.
+    """
 
     coef: FloatArray
     resid: FloatArray
     cov: FloatArray
-    nobs: int
     clusters: int
+    codes: IntArray
+    X: FloatArray
+    y: FloatArray
+
+    @property
+    def nobs(self) -> int:
+        return len(self.y)
 
     def se(self, j: int) -> float:
+        """The CR1 standard error of coefficient ``j``."""
         return float(np.sqrt(self.cov[j, j]))
 
+    @cached_property
+    def loo(self) -> FloatArray:
+        """Coefficients with each cluster left out in turn (G x K; NaN rows if singular)."""
+        return leave_one_cluster_out(self.y, self.X, self.codes, self.clusters)
+
+    @cached_property
+    def cov_cv3(self) -> FloatArray | None:
+        if not np.isfinite(self.loo).all():
+            return None
+        dev = self.loo - self.coef
+        out: FloatArray = (self.clusters - 1) / self.clusters * (dev.T @ dev)
+        return out
+
+    @property
+    def test_covariance(self) -> str:
+        return "CV3 jackknife" if self.cov_cv3 is not None else "CR1"
+
+    def _test_cov(self) -> FloatArray:
+        return self.cov if self.cov_cv3 is None else self.cov_cv3
+
     def t_test(self, j: int, null: float = 0.0) -> tuple[float, float]:
-        """t statistic and two-sided p-value from t(G-1)."""
-        t = (float(self.coef[j]) - null) / self.se(j)
+        """t statistic (CV3, else CR1) and its two-sided p-value from t(G-1)."""
+        t = (float(self.coef[j]) - null) / float(np.sqrt(self._test_cov()[j, j]))
         return t, float(2.0 * stats.t.sf(abs(t), self.clusters - 1))
 
     def wald(self, cols: list[int]) -> tuple[float, float]:
-        """Wald F statistic that the coefficients ``cols`` are zero; p from F(q, G-1)."""
+        """Wald F that the coefficients ``cols`` are zero (CV3, else CR1); F(q, G-1)."""
         b = self.coef[cols]
-        v = self.cov[np.ix_(cols, cols)]
+        v = self._test_cov()[np.ix_(cols, cols)]
         f = float(b @ np.linalg.solve(v, b)) / len(cols)
         return f, float(stats.f.sf(f, len(cols), self.clusters - 1))
 
@@ -203,7 +239,8 @@ def _cluster_fit(y: FloatArray, X: FloatArray, clusters: IntArray) -> _Fit:
     Miller 2015). Effects absorbed by demeaning within clusters are not counted
     in K, as in the estimation stage.
     """
-    codes, uniques = pd.factorize(clusters)
+    codes_raw, uniques = pd.factorize(clusters)
+    codes = codes_raw.astype(np.intp)
     g = len(uniques)
     n, k = X.shape
     if g < 2 or n <= k:
@@ -211,10 +248,10 @@ def _cluster_fit(y: FloatArray, X: FloatArray, clusters: IntArray) -> _Fit:
     bread = np.linalg.inv(X.T @ X)
     coef = bread @ (X.T @ y)
     resid = y - X @ coef
-    scores = _group_sums(X * resid[:, None], codes.astype(np.intp), g)
+    scores = _group_sums(X * resid[:, None], codes, g)
     factor = g / (g - 1) * (n - 1) / (n - k)
     cov = factor * bread @ (scores.T @ scores) @ bread
-    return _Fit(coef, resid, cov, n, g)
+    return _Fit(coef, resid, cov, g, codes, X, y)
 
 
 def _independent(base: FloatArray, extra: FloatArray) -> IntArray:
@@ -255,15 +292,24 @@ class _Index:
 
     @classmethod
     def of(cls, design: Design) -> _Index:
-        unit = pd.factorize(design.units)[0].astype(np.intp)
+        unit, units = pd.factorize(design.units)
         period = pd.factorize(design.periods, sort=True)[0].astype(np.intp)
-        cluster, labels = pd.factorize(design.clusters.to_numpy())
+        cluster, _ = pd.factorize(design.clusters.iloc[:, 0].to_numpy())
+        cluster = cluster.astype(np.intp)
+        # The design keeps cluster codes only: name a cluster by its unit when
+        # clustering by unit, otherwise by the first unit it holds.
+        first_unit = units[unit[np.unique(cluster, return_index=True)[1]]]
+        if design.clusters.columns[0] == design.settings.unit:
+            labels = pd.Index([str(u) for u in first_unit])
+        else:
+            col = design.clusters.columns[0]
+            labels = pd.Index([f"{col} holding unit {u}" for u in first_unit])
         return cls(
-            unit,
+            unit.astype(np.intp),
             period,
-            cluster.astype(np.intp),
-            pd.Index(labels),
-            int(unit.max()) + 1 if len(unit) else 0,
+            cluster,
+            labels,
+            len(units),
             int(period.max()) + 1 if len(period) else 0,
         )
 
@@ -345,6 +391,11 @@ class _Context:
     @property
     def headline(self) -> str:
         return self.fe.headline_inference
+
+    @property
+    def clustered(self) -> bool:
+        """Whether the headline inference is robust to errors correlated within clusters."""
+        return self.headline in {"cluster", "wild_bootstrap"}
 
     def headline_p(self) -> float:
         return float(self.fe.inference[self.headline].p_values[self.focus])
@@ -545,76 +596,93 @@ def oster_beta_star(
 
 
 def _omitted_variables(ctx: _Context) -> Diagnostic:
+    r"""Coefficient path and Oster's bound for the fixed-effects estimate.
+
+    Notes
+    -----
+    The unit effects are the baseline of both of Oster's regressions, because
+    the threat left for a fixed-effects estimate is a time-varying omitted
+    variable: the "uncontrolled" regression is the within regression of the
+    outcome on the focus regressor alone, the "controlled" one is the headline
+    fixed-effects model (other regressors and, if configured, period effects as
+    the observed controls), and every R-squared and variance is a within one.
+    Computed in the usual way with the unit effects counted as controls, the
+    bound would read the movement that fixed effects remove (unit-level
+    confounding) as a sign of time-varying confounding and caution on designs
+    that have none.
+    """
     key = "omitted_variables"
     w = ctx.within
     assert w is not None
     x_all = ctx.design.x.to_numpy(dtype=float)
     j_all = list(ctx.design.x.columns).index(ctx.focus)
-    xf = x_all[:, j_all]
     y = w.y_raw
-    n = len(y)
-    ones = np.ones((n, 1))
-    pooled = _ssr(y, np.hstack([ones, x_all]))[0][1 + j_all]
+    pooled = _ssr(y, np.hstack([np.ones((len(y), 1)), x_all]))[0][1 + j_all]
     one_way = _ssr(w.y, w.x)[0][w.focus]
     d_all = ctx.index.period_dummies()
     d_w = _demean(d_all, ctx.index.unit) if d_all.shape[1] else d_all
     d_w = d_w[:, _independent(w.x, d_w)]
     two_way = _ssr(w.y, np.hstack([w.x, d_w]))[0][w.focus]
     path = {"pooled_ols": pooled, "unit_effects": one_way, "unit_and_period_effects": two_way}
-
-    short_coef, short_resid = _ssr(y, np.column_stack([ones, xf]))
-    tss = float(((y - y.mean()) ** 2).sum())
+    se = w.fit.se(w.focus)
     beta_long = float(w.fit.coef[w.focus])
-    r2_long = 1.0 - float(w.fit.resid @ w.fit.resid) / tss
-    r2_short = 1.0 - float(short_resid @ short_resid) / tss
+    movement = {
+        "coefficient_path": path,
+        "movement_pooled_to_fixed_effects_in_se": (pooled - beta_long) / se,
+    }
     others = np.delete(w.w, w.focus, axis=1)
-    tau_resid = w.x[:, w.focus] - (
-        others @ _ssr(w.x[:, w.focus], others)[0] if others.shape[1] else 0
-    )
-    r2_max = min(1.0, THRESHOLDS["oster_rmax_multiplier"] * r2_long)
+    if others.shape[1] == 0:
+        reason = (
+            "the fixed-effects model has no control besides the unit effects (no other "
+            "regressor, no period effects), so no coefficient movement scales the bound"
+        )
+        return Diagnostic(key, "not_run", f"Not run: {reason}.", details=movement, reason=reason)
+    n = len(w.y)
+    xf = w.x[:, w.focus]
+    tss = float(w.y @ w.y)
+    short_coef, short_resid = _ssr(w.y, xf[:, None])
+    tau_resid = xf - others @ _ssr(xf, others)[0]
+    r2_long = 1.0 - float(w.fit.resid @ w.fit.resid) / tss
     inputs = {
-        "beta_short": float(short_coef[1]),
-        "r2_short": r2_short,
+        "beta_short": float(short_coef[0]),
+        "r2_short": 1.0 - float(short_resid @ short_resid) / tss,
         "beta_long": beta_long,
         "r2_long": r2_long,
-        "r2_max": r2_max,
+        "r2_max": min(1.0, THRESHOLDS["oster_rmax_multiplier"] * r2_long),
         "var_y": tss / n,
-        "var_x": float(xf.var()),
+        "var_x": float(xf @ xf) / n,
         "tau_x": float(tau_resid @ tau_resid) / n,
     }
     delta = oster_delta(0.0, **inputs)
     beta_star = oster_beta_star(**inputs)
     bounds = sorted([beta_long, beta_star]) if np.isfinite(beta_star) else [beta_long, beta_star]
-    se = w.fit.se(w.focus)
-    significant = ctx.headline_p() < ctx.alpha
     crosses_zero = bool(np.isfinite(beta_star) and bounds[0] <= 0.0 <= bounds[1])
     fragile = abs(delta) < THRESHOLDS["oster_delta"] or crosses_zero
+    controls = "the other regressors" if len(w.terms) > 1 else ""
+    if w.d.shape[1]:
+        controls = f"{controls} and the period effects" if controls else "the period effects"
     effect = {
         "estimate": beta_long,
         "beta_star": beta_star,
         "identified_set": bounds,
         "delta_for_zero": delta,
-        "r2_max": r2_max,
-        "coefficient_path": path,
-    }
-    details = {
-        **inputs,
-        "movement_pooled_to_fe_in_se": (pooled - beta_long) / se,
-        "controls": "the other regressors and the unit effects"
-        + (" and period effects" if ctx.design.settings.period_effects else ""),
-        "uncontrolled": "pooled OLS of the outcome on the focus regressor alone",
+        "r2_max": inputs["r2_max"],
+    } | movement
+    details = inputs | {
+        "controls": controls,
+        "baseline": "unit effects in both regressions; R-squared and variances are within",
     }
     sentence = (
-        f"unobservables would have to matter {_fmt(abs(delta))} times as much as the unit "
-        f"effects and other regressors to explain the estimate of {ctx.focus} away, and with "
-        f"equal importance it would be {_fmt(beta_star)} instead of {_fmt(beta_long)}"
+        f"time-varying unobservables would need {_fmt(abs(delta))} times the pull of "
+        f"{controls} to explain the estimate of {ctx.focus} away, and with equal pull it "
+        f"would be {_fmt(beta_star)} instead of {_fmt(beta_long)}"
     )
-    if not significant:
+    if ctx.headline_p() >= ctx.alpha:
         status: Status = "ok"
         message = (
             f"The estimate of {ctx.focus} is not distinguishable from zero, so there is nothing "
-            f"for omitted variables to explain away; at equal selection on unobservables it "
-            f"would be {_fmt(beta_star)}."
+            f"for omitted variables to explain away; with unobservables as important as "
+            f"{controls} it would be {_fmt(beta_star)}."
         )
     elif fragile:
         status = "caution"
@@ -653,6 +721,7 @@ def _strict_exogeneity(ctx: _Context) -> Diagnostic:
     details = {
         "reference": f"F({q}, {fit.clusters - 1})",
         "df_denominator": fit.clusters - 1,
+        "covariance": fit.test_covariance,
         "nobs": fit.nobs,
         "lead_coefficients": {
             w.terms[i]: float(fit.coef[c]) for i, c in zip(kept, cols, strict=True)
@@ -701,6 +770,7 @@ def _functional_form(ctx: _Context) -> Diagnostic:
     details = {
         "reference": f"F({q}, {fit.clusters - 1})",
         "df_denominator": fit.clusters - 1,
+        "covariance": fit.test_covariance,
         "powers": [int(2 + k) for k in keep],
     }
     if p < ctx.alpha:
@@ -727,6 +797,16 @@ def _within_shares(design: Design, unit: IntArray) -> dict[str, float]:
     return {str(c): float(s) for c, s in zip(design.x.columns, shares, strict=True)}
 
 
+def _influence(fit: _Fit, j: int, labels: IntArray, n: int) -> FloatArray:
+    r"""Each cluster's contribution :math:`a_j'X_g'\hat u_g` to coefficient ``j``.
+
+    ``labels`` are cluster codes shared across fits, so that influences of two
+    fits on different rows (levels and differences) line up by cluster.
+    """
+    a = np.linalg.solve(fit.X.T @ fit.X, np.eye(fit.X.shape[1])[:, j])
+    return np.bincount(labels, weights=(fit.X @ a) * fit.resid, minlength=n)
+
+
 def _measurement_error(ctx: _Context) -> Diagnostic:
     key = "measurement_error"
     w = ctx.within
@@ -742,19 +822,33 @@ def _measurement_error(ctx: _Context) -> Diagnostic:
     if ctx.first_diff is not None:
         fd = ctx.first_diff.fit
         b_fd, se_fd = float(fd.coef[w.focus]), fd.se(w.focus)
-        z = (b_fe - b_fd) / float(np.hypot(se_fe, se_fd))
+        g = ctx.index.n_clusters
+        # Both estimates move with the same cluster shocks, so the variance of
+        # their difference is taken from the difference of their cluster
+        # influences; the sum of the two variances would be conservative.
+        gap = _influence(w.fit, w.focus, ctx.index.cluster, g) - _influence(
+            fd, w.focus, ctx.index.cluster[ctx.first_diff.rows], g
+        )
+        se_diff = float(np.sqrt(g / (g - 1) * (gap @ gap)))
+        z = (b_fe - b_fd) / se_diff
         p = float(2.0 * stats.norm.sf(abs(z)))
         diverge = abs(z) > THRESHOLDS["fe_fd_divergence_z"]
         effect |= {"first_difference": b_fd, "difference": b_fe - b_fd}
-        details |= {"se_fixed_effects": se_fe, "se_first_difference": se_fd}
+        details |= {
+            "se_fixed_effects": se_fe,
+            "se_first_difference": se_fd,
+            "se_difference": se_diff,
+            "z_conservative": (b_fe - b_fd) / float(np.hypot(se_fe, se_fd)),
+        }
     else:
         details["first_difference"] = ctx.fd_missing
     share_text = f"{share:.0%} of the variance of {ctx.focus} is within units"
     if diverge:
         status: Status = "caution"
         message = (
-            f"Fixed effects ({_fmt(b_fe)}) and first differences ({_fmt(effect['first_difference'])})"
-            f" disagree beyond sampling error (z = {_fmt(float(z or 0))}) and {share_text}; "
+            f"Fixed effects ({_fmt(b_fe)}) and first differences "
+            f"({_fmt(effect['first_difference'])}) disagree beyond sampling error "
+            f"(z = {_fmt(float(z or 0))}) and {share_text}; "
             "measurement error in the regressor attenuates the two differently, though feedback "
             "or dynamics can do the same."
         )
@@ -822,12 +916,37 @@ def _attrition(ctx: _Context) -> Diagnostic:
             details=details,
         )
     fit, cols, _ = out
-    tstat, p = fit.t_test(cols[0])
+    tstat, p_test = fit.t_test(cols[0])
+    changing = int(np.unique(ix.unit[rows][present[:, 0] == 0]).size)
     details |= {
-        "reference": f"t({fit.clusters - 1})",
         "presence_coefficient": float(fit.coef[cols[0]]),
         "nobs": fit.nobs,
+        "units_with_presence_change": changing,
+        "reference": f"t({fit.clusters - 1})",
+        "covariance": fit.test_covariance,
+        "p_value_t_test": p_test,
     }
+    # Presence often changes in a handful of clusters only, where cluster-robust
+    # t-tests reject too often; the restricted wild bootstrap errs on the safe
+    # side (MacKinnon & Webb 2017). The test rejects only when both reject, so
+    # the bootstrap runs only when the t-test does.
+    p = p_test
+    if p_test < ctx.alpha and ix.nested():
+        try:
+            boot = wild_cluster_bootstrap(
+                fit.y,
+                fit.X,
+                fit.codes,
+                term_index=cols[0],
+                term="present_next_period",
+                draws=int(THRESHOLDS["bootstrap_draws"]),
+                seed=int(ctx.design.settings.bootstrap.get("seed", 0)),
+            )
+        except ValueError as exc:
+            details["wild_bootstrap"] = f"not run: {exc}"
+        else:
+            p = max(p_test, boot.p_value)
+            details["p_value_wild_bootstrap"] = boot.p_value
     effect = {
         "estimate": float(w.fit.coef[w.focus]),
         "estimate_with_presence": float(fit.coef[w.focus]),
@@ -852,7 +971,7 @@ def _attrition(ctx: _Context) -> Diagnostic:
 
 def _se_consequence(ctx: _Context, what: str, remedy: str) -> tuple[Status, str]:
     """Status and the clause on standard errors, given the headline inference."""
-    if ctx.headline == "cluster":
+    if ctx.clustered:
         return "caution", (
             f"{what}, so classical standard errors are too small; the headline's clustered "
             f"standard errors allow for this{remedy}."
@@ -889,13 +1008,18 @@ def _serial_correlation(ctx: _Context) -> Diagnostic:
         "implied_ar1_of_errors": 1.0 + 2.0 * rho,
         "se_ratio_cluster_to_classical": ctx.se_ratio("cluster", "classical"),
     }
-    details = {"reference": f"t({fit.clusters - 1})", "null": -0.5, "nobs": fit.nobs}
+    details = {
+        "reference": f"t({fit.clusters - 1})",
+        "covariance": fit.test_covariance,
+        "null": -0.5,
+        "nobs": fit.nobs,
+    }
     if p < ctx.alpha:
         status, message = _se_consequence(
             ctx,
             f"Errors are correlated over time within units (implied autocorrelation "
             f"{_fmt(1.0 + 2.0 * rho)})",
-            "" if ctx.headline == "cluster" else "; cluster by unit",
+            "" if ctx.clustered else "; cluster by unit",
         )
     else:
         status = "ok"
@@ -906,87 +1030,132 @@ def _serial_correlation(ctx: _Context) -> Diagnostic:
     return Diagnostic(key, status, message, tstat, p, fit.clusters - 1, effect, details)
 
 
-def pesaran_cd(resid: FloatArray, unit: IntArray, period: IntArray) -> tuple[float, int, float]:
-    r"""Pesaran's CD statistic in O(NT), for balanced and unbalanced panels.
+@dataclass(frozen=True)
+class CrossSectionalDependence:
+    """The CD test of `pesaran_cd`.
+
+    Parameters
+    ----------
+    statistic
+        The pair sum standardised by its exact null standard deviation; N(0, 1)
+        when errors are independent across units. This is the one tested.
+    pesaran
+        Pesaran's CD itself (exact on balanced panels, the pair-weighted
+        approximation on unbalanced ones); its null variance is about
+        T/(T-1), so it rejects a little too often in short panels.
+    units
+        Units used: observed in at least two periods, residuals not all zero.
+    pair_periods
+        :math:`\\sum_{i<j} T_{ij}`, the unit pairs times the periods they share.
+    mean_correlation
+        Average residual correlation over pairs, each weighted by its shared periods.
+    """
+
+    statistic: float
+    pesaran: float
+    units: int
+    pair_periods: int
+    mean_correlation: float
+
+
+def _pair_sum(f: FloatArray, g: FloatArray, period: IntArray) -> float:
+    r""":math:`\sum_{i \ne j} f_i g_j T_{ij}` from period sums, O(NT) (f, g per row)."""
+    sf = np.bincount(period, weights=f)
+    sg = np.bincount(period, weights=g)
+    sfg = np.bincount(period, weights=f * g)
+    return float((sf * sg - sfg).sum())
+
+
+def pesaran_cd(resid: FloatArray, unit: IntArray, period: IntArray) -> CrossSectionalDependence:
+    r"""Pesaran's CD test of cross-sectional dependence in O(NT), balanced or not.
 
     Parameters
     ----------
     resid
-        Residuals with mean zero within each unit.
+        Residuals with mean zero within each unit (fixed-effects residuals).
     unit, period
-        Integer codes of each residual's unit and period.
-
-    Returns
-    -------
-    cd, units, mean_correlation
-        The statistic (N(0, 1) under no cross-sectional dependence), the number of
-        units used (those with at least two periods and nonzero residuals) and the
-        pair-period-weighted average correlation.
+        Integer codes (0, 1, ...) of each residual's unit and period.
 
     Notes
     -----
-    Pesaran (2004; 2015, *Econometric Reviews* 34) defines
-    :math:`CD = \sqrt{2/(N(N-1))}\sum_{i<j}\sqrt{T_{ij}}\,\hat\rho_{ij}`. Standardise
-    each unit's residuals over its own periods, :math:`z_{it} = e_{it}/s_i` with
-    :math:`s_i^2 = T_i^{-1}\sum_t e_{it}^2`, and let :math:`S_t = \sum_i z_{it}`,
-    :math:`Q_t = \sum_i z_{it}^2` and :math:`n_t` the units present in period t.
-    Then :math:`\sum_{i<j}\sum_{t\in T_{ij}} z_{it}z_{jt} = \tfrac12\sum_t(S_t^2 - Q_t)`
-    and :math:`\sum_{i<j}T_{ij} = \tfrac12\sum_t(n_t^2-n_t)`, so
+    Pesaran (2004; 2015, *Econometric Reviews* 34(6-10)) defines
+    :math:`CD = \sqrt{2/(N(N-1))}\sum_{i<j}\sqrt{T_{ij}}\,\hat\rho_{ij}`.
+    Standardise each unit's residuals over its own :math:`T_i` periods,
+    :math:`z_{it} = e_{it}/s_i` with :math:`s_i^2 = T_i^{-1}\sum_t e_{it}^2`, and let
+    :math:`S_t = \sum_i z_{it}`, :math:`Q_t = \sum_i z_{it}^2` and :math:`n_t` the
+    number of units in period t. Then
 
-    .. math:: CD = \frac{\tfrac12\sum_t (S_t^2 - Q_t)}{\sqrt{\tfrac12\sum_t(n_t^2 - n_t)}}
+    .. math:: C = \sum_{i<j}\sum_{t\in T_{ij}} z_{it}z_{jt} = \tfrac12\sum_t(S_t^2-Q_t),
+              \qquad \sum_{i<j}T_{ij} = \tfrac12\sum_t(n_t^2-n_t),
 
-    costs O(NT). On a balanced panel :math:`\hat\rho_{ij} = T^{-1}\sum_t z_{it}z_{jt}`
-    and this equals Pesaran's CD exactly. On an unbalanced panel every pair is
-    formed over the periods both units share, with each unit standardised over
-    all its own periods (not over the shared ones) and each pair weighted by
-    :math:`T_{ij}` (not :math:`\sqrt{T_{ij}}`); the denominator is the exact null
-    standard deviation of that numerator, so the statistic stays N(0, 1) under the
-    null. It approximates Pesaran's unbalanced CD, which recentres and rescales
-    every pair over its shared periods.
+    both O(NT). On a balanced panel :math:`\hat\rho_{ij} = T^{-1}\sum_t z_{it}z_{jt}`
+    and :math:`CD = C/\sqrt{\sum_{i<j}T_{ij}}` exactly. On an unbalanced panel a
+    pair is formed over the periods both units share, each unit standardised over
+    all its own periods (not recentred on the shared ones), and pairs are weighted
+    by :math:`T_{ij}` instead of :math:`\sqrt{T_{ij}}`: an approximation of
+    Pesaran's unbalanced CD, reported as ``pesaran``.
+
+    The tested ``statistic`` divides C by its exact null standard deviation
+    instead. Demeaning makes :math:`E[z_{it}z_{is}] = k_i(\delta_{ts} - 1/T_i)`
+    with :math:`k_i = T_i/(T_i-1)`, so for independent units
+
+    .. math:: V = \sum_{i<j} k_ik_j\Big[T_{ij}\big(1-\tfrac1{T_i}-\tfrac1{T_j}\big)
+              + \tfrac{T_{ij}^2}{T_iT_j}\Big],
+
+    :math:`N(N-1)T^2/(2(T-1))` when balanced, where Pesaran's CD assumes
+    :math:`N(N-1)T/2`. Each sum over pairs is a sum over periods of unit weights,
+    O(NT); the last term uses :math:`T_{ij}^2/(T_iT_j) \le T_{ij}/\sqrt{T_iT_j}`,
+    exact when balanced and slightly conservative otherwise.
     """
-    t_i = np.bincount(unit)
-    ss = np.bincount(unit, weights=resid**2)
+    t_i = np.bincount(unit).astype(float)
+    ss = np.bincount(unit, weights=resid**2, minlength=len(t_i))
     usable = (t_i >= 2) & (ss > 0)
     rows = usable[unit]
-    s = np.sqrt(ss[usable] / t_i[usable])
-    scale = np.zeros(len(t_i))
-    scale[usable] = 1.0 / s
-    z = resid[rows] * scale[unit[rows]]
-    per = period[rows]
-    s_t = np.bincount(per, weights=z)
-    q_t = np.bincount(per, weights=z**2)
-    n_t = np.bincount(per).astype(float)
-    num = 0.5 * float((s_t**2 - q_t).sum())
-    pairs = 0.5 * float((n_t**2 - n_t).sum())
-    if pairs <= 0:
-        return float("nan"), int(usable.sum()), float("nan")
-    return num / np.sqrt(pairs), int(usable.sum()), num / pairs
+    u, per = unit[rows], period[rows]
+    z = resid[rows] / np.sqrt(ss[u] / t_i[u])
+    total = 0.5 * _pair_sum(z, z, per)
+    ones = np.ones(len(u))
+    pairs_t = 0.5 * _pair_sum(ones, ones, per)
+    if pairs_t <= 0:
+        nan = float("nan")
+        return CrossSectionalDependence(nan, nan, int(usable.sum()), 0, nan)
+    k = (t_i / np.maximum(t_i - 1, 1))[u]
+    a = k / t_i[u]
+    b = k / np.sqrt(t_i[u])
+    variance = 0.5 * _pair_sum(k, k, per) - _pair_sum(a, k, per) + 0.5 * _pair_sum(b, b, per)
+    return CrossSectionalDependence(
+        statistic=total / float(np.sqrt(variance)),
+        pesaran=total / float(np.sqrt(pairs_t)),
+        units=int(usable.sum()),
+        pair_periods=round(pairs_t),
+        mean_correlation=total / pairs_t,
+    )
 
 
 def _cross_sectional_dependence(ctx: _Context) -> Diagnostic:
     key = "cross_sectional_dependence"
     w = ctx.within
     assert w is not None
+    # After period effects the residuals sum to zero in every period, which pins
+    # the average correlation at -1/(N-1) and leaves CD with no power and a bias
+    # of about -sqrt(T/2) (Juodis & Reese 2022); the test therefore looks at
+    # the residuals before period effects are removed.
     period_effects = w.d.shape[1] > 0
     resid = _ssr(w.y, w.x)[1] if period_effects else w.fit.resid
-    cd, units, rho = pesaran_cd(resid, ctx.index.unit, ctx.index.period)
-    if not np.isfinite(cd):
+    cd = pesaran_cd(resid, ctx.index.unit, ctx.index.period)
+    if not np.isfinite(cd.statistic):
         return _not_run(key, "no two units share a period")
-    p = float(2.0 * stats.norm.sf(abs(cd)))
+    p = float(2.0 * stats.norm.sf(abs(cd.statistic)))
     effect = {
-        "mean_correlation": rho,
+        "mean_correlation": cd.mean_correlation,
         "se_ratio_driscoll_kraay_to_cluster": ctx.se_ratio("driscoll_kraay", "cluster"),
     }
     details = {
         "reference": "N(0, 1)",
-        "units": units,
-        "residuals": "fixed effects with unit effects only"
-        + (
-            " (after period effects the average correlation is zero by construction and the "
-            "statistic is biased, Juodis & Reese 2022)"
-            if period_effects
-            else ""
-        ),
+        "pesaran_cd": cd.pesaran,
+        "units": cd.units,
+        "pair_periods": cd.pair_periods,
+        "residuals": "fixed effects with unit effects only" if period_effects else "fixed effects",
     }
     if p >= ctx.alpha:
         return Diagnostic(
@@ -994,7 +1163,7 @@ def _cross_sectional_dependence(ctx: _Context) -> Diagnostic:
             "ok",
             "No sign that errors are correlated across units within periods, so clustering by "
             "unit is adequate in this respect.",
-            cd,
+            cd.statistic,
             p,
             None,
             effect,
@@ -1015,7 +1184,7 @@ def _cross_sectional_dependence(ctx: _Context) -> Diagnostic:
             "Errors share shocks across units within periods, so standard errors clustered by "
             f"unit are too small; add period effects and {remedy}."
         )
-    return Diagnostic(key, status, message, cd, p, None, effect, details)
+    return Diagnostic(key, status, message, cd.statistic, p, None, effect, details)
 
 
 def groupwise_heteroskedasticity(resid: FloatArray, unit: IntArray) -> tuple[float, int]:
@@ -1076,7 +1245,7 @@ def _heteroskedasticity(ctx: _Context) -> Diagnostic:
         status, message = _se_consequence(
             ctx,
             "The error variance differs across units",
-            "" if ctx.headline == "cluster" else "; use robust or clustered standard errors",
+            "" if ctx.clustered else "; use robust or clustered standard errors",
         )
     else:
         status = "ok"
@@ -1092,19 +1261,21 @@ def _heteroskedasticity(ctx: _Context) -> Diagnostic:
 
 def _few_clusters(ctx: _Context) -> Diagnostic:
     key = "few_clusters"
+    clusters = ctx.design.clusters
+    counts = {str(c): int(clusters[c].nunique()) for c in clusters.columns}
     ix = ctx.index
-    g = ix.n_clusters
-    sizes = np.bincount(ix.cluster, minlength=g)
+    g = min(counts.values())
+    sizes = np.bincount(ix.cluster, minlength=ix.n_clusters)
     largest = int(sizes.argmax())
     share = float(sizes[largest] / sizes.sum())
     details: dict[str, Any] = {
-        "clusters": g,
+        "clusters": counts,
         "size_min": int(sizes.min()),
         "size_median": float(np.median(sizes)),
         "size_max": int(sizes.max()),
         "largest_cluster": str(ix.cluster_labels[largest]),
         "largest_share": share,
-        "cluster_by": ctx.design.settings.cluster_by[0],
+        "sizes_of": str(clusters.columns[0]),
     }
     dominant = share > THRESHOLDS["dominant_cluster_share"]
     if g < THRESHOLDS["few_clusters"]:
@@ -1134,10 +1305,25 @@ def _few_clusters(ctx: _Context) -> Diagnostic:
 
 
 def _bootstrap_effect(ctx: _Context, details: dict[str, Any]) -> dict[str, Any]:
+    """The wild cluster bootstrap of the focus: the estimation stage's, or B=999 here."""
     w = ctx.within
     if w is None:
         details["wild_bootstrap"] = f"not run: {ctx.missing}"
         return {}
+    cluster_p = (
+        float(ctx.fe.inference["cluster"].p_values[ctx.focus])
+        if "cluster" in ctx.fe.inference
+        else w.fit.t_test(w.focus)[1]
+    )
+    done = ctx.fe.inference.get("wild_bootstrap")
+    if done is not None:
+        details["wild_bootstrap"] = "from the estimation stage"
+        return {
+            "estimate": float(w.fit.coef[w.focus]),
+            "wild_bootstrap_p_value": float(done.p_values[ctx.focus]),
+            "wild_bootstrap_ci": [float(done.ci_low[ctx.focus]), float(done.ci_high[ctx.focus])],
+            "cluster_p_value": cluster_p,
+        }
     if not ctx.index.nested():
         details["wild_bootstrap"] = (
             "not run: units are not nested in clusters, so the within data cannot be used"
@@ -1152,7 +1338,7 @@ def _bootstrap_effect(ctx: _Context, details: dict[str, Any]) -> dict[str, Any]:
             term=ctx.focus,
             draws=int(THRESHOLDS["bootstrap_draws"]),
             level=ctx.design.settings.level,
-            seed=0,
+            seed=int(ctx.design.settings.bootstrap.get("seed", 0)),
         )
     except ValueError as exc:
         details["wild_bootstrap"] = f"not run: {exc}"
@@ -1162,7 +1348,7 @@ def _bootstrap_effect(ctx: _Context, details: dict[str, Any]) -> dict[str, Any]:
         "estimate": boot.estimate,
         "wild_bootstrap_p_value": boot.p_value,
         "wild_bootstrap_ci": [boot.ci_low, boot.ci_high],
-        "cluster_p_value": ctx.headline_p() if ctx.headline == "cluster" else None,
+        "cluster_p_value": cluster_p,
     }
 
 
@@ -1212,7 +1398,7 @@ def _influential_clusters(ctx: _Context) -> Diagnostic:
             "within data and cluster-level sums do not give the refit",
         )
     g = ix.n_clusters
-    loo = leave_one_cluster_out(w.y, w.w, ix.cluster, g)[:, w.focus]
+    loo = w.fit.loo[:, w.focus]
     finite = np.isfinite(loo)
     if finite.sum() < 2:
         return _not_run(key, "the estimate cannot be recomputed without single clusters")

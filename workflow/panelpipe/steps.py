@@ -98,13 +98,15 @@ def validate_step(
         _write_json(run_dir / "validation.json", doc)
         atomic_write_text(
             run_dir / "validation.html",
-            render_validation_page({
-                "analysis": settings.name,
-                "run_id": run_dir.name,
-                "created": dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat(),
-                "findings": result.findings,
-                "sources": sorted({str(x) for x in raw["_source"].unique()}),
-            }),
+            render_validation_page(
+                {
+                    "analysis": settings.name,
+                    "run_id": run_dir.name,
+                    "created": dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat(),
+                    "findings": result.findings,
+                    "sources": sorted({str(x) for x in raw["_source"].unique()}),
+                }
+            ),
         )
         errors = [f for f in result.findings if f.severity == "error"]
         lines = "\n".join(f"  - [{f.code}] {f.message}" for f in errors)
