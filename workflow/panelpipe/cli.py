@@ -21,7 +21,7 @@ from .changes import compare_runs, render_changes
 from .config import REPO_ROOT, analysis_settings, load_config, source_specs, validate_config
 from .findings import PanelpipeError
 from .ingest import read_panel
-from .runs import plan_runs
+from .runs import plan_runs, run_lock
 from .survey import inspect_file, render_profile
 from .validate import validate_panel
 
@@ -66,13 +66,21 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
     if args.dry_run:
         cmd.append("--dry-run")
     cmd.extend(extra)
-    code = subprocess.call(cmd)
     out = Path(config["output_dir"])
     out = out if out.is_absolute() else workdir / out
+    existed = {name: (out / name / run / "report.html").is_file() for name, run in planned.items()}
+    with run_lock(out):
+        _clear_stale_snakemake_lock(workdir)
+        code = subprocess.call(cmd)
     for name, run in planned.items():
         folder = out / name / run
         done = (folder / "report.html").is_file()
-        status = "ok" if done else ("planned" if args.dry_run else "failed")
+        if args.dry_run:
+            status = "planned"
+        elif done:
+            status = "unchanged" if existed[name] else "ok"
+        else:
+            status = "failed"
         print(
             json.dumps(
                 {
@@ -81,7 +89,8 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
                     "run_id": run,
                     "report": str(folder / "report.html") if done else None,
                 }
-            )
+            ),
+            flush=True,
         )
     if code != 0:
         sys.stderr.write(
@@ -90,6 +99,32 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
             "logs/ folder.\n"
         )
     return code
+
+
+def _clear_stale_snakemake_lock(workdir: Path) -> None:
+    """Remove the lock of a Snakemake process that was killed.
+
+    Called while panelpipe's own lock on the output folder is held, so no other
+    panelpipe run is active; a lock left in .snakemake/locks is then stale.
+    """
+    locks = workdir / ".snakemake" / "locks"
+    if locks.is_dir() and any(locks.iterdir()):
+        sys.stderr.write("panelpipe: removing a stale Snakemake lock left by an interrupted run\n")
+        subprocess.call(
+            [
+                sys.executable,
+                "-m",
+                "snakemake",
+                "--snakefile",
+                str(REPO_ROOT / "Snakefile"),
+                "--directory",
+                str(workdir),
+                "--unlock",
+                "--cores",
+                "1",
+            ],
+            stdout=subprocess.DEVNULL,
+        )
 
 
 def _check(args: argparse.Namespace) -> int:

@@ -8,16 +8,19 @@ any change gives a new folder, and no run writes into another run's folder.
 
 from __future__ import annotations
 
+import contextlib
+import fcntl
 import hashlib
 import json
 import os
 import tempfile
-from collections.abc import Iterable, Mapping
+from collections.abc import Iterable, Iterator, Mapping
 from pathlib import Path
 from typing import Any
 
 from . import __version__
 from .config import REPO_ROOT, analysis_settings, resolve_sources
+from .findings import PanelpipeError
 
 __all__ = [
     "atomic_write_text",
@@ -25,6 +28,7 @@ __all__ = [
     "file_digest",
     "plan_runs",
     "run_id",
+    "run_lock",
     "update_latest",
 ]
 
@@ -102,3 +106,33 @@ def plan_runs(config: Mapping[str, Any]) -> dict[str, str]:
         paths = resolve_sources(settings.sources, analysis=name)
         planned[name] = run_id([file_digest(p) for p in paths], settings.to_dict(), code)
     return planned
+
+
+@contextlib.contextmanager
+def run_lock(output_dir: Path) -> Iterator[None]:
+    """Hold an exclusive lock on an output folder for the length of a run.
+
+    The operating system releases the lock when the process ends, however it
+    ends (even SIGKILL), so a killed run never blocks the next one.
+    """
+    output_dir = Path(output_dir)
+    output_dir.mkdir(parents=True, exist_ok=True)
+    path = output_dir / ".panelpipe.lock"
+    with path.open("a+", encoding="utf-8") as fh:
+        try:
+            fcntl.flock(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            fh.seek(0)
+            holder = fh.read().strip() or "unknown"
+            raise PanelpipeError(
+                f"another panelpipe run (process {holder}) is writing to {output_dir}; "
+                "wait for it to finish, then run again."
+            ) from None
+        fh.seek(0)
+        fh.truncate()
+        fh.write(str(os.getpid()))
+        fh.flush()
+        try:
+            yield
+        finally:
+            fcntl.flock(fh, fcntl.LOCK_UN)
