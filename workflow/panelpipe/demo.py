@@ -365,6 +365,29 @@ def write_demo(out_dir: Path) -> list[Path]:
     return [history, delivery]
 
 
+def write_delivery(out_dir: Path, year: int, *, history: bool = False) -> Path:
+    """Write one yearly delivery of the demo simulation (for the yearly-update example).
+
+    ``history=True`` writes every year up to and including ``year`` as one file
+    (``regional_jobs_<first>_<year>.csv``); otherwise only that year
+    (``regional_jobs_<year>.csv``). The values are those of the shipped demo.
+    """
+    frame = simulate_regions()
+    if not _DEFAULT_FIRST_YEAR <= year <= _DEFAULT_LAST_YEAR:
+        raise ValueError(
+            f"year {year} is outside the simulated years {_DEFAULT_FIRST_YEAR}-{_DEFAULT_LAST_YEAR}"
+        )
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    if history:
+        path = out_dir / f"regional_jobs_{_DEFAULT_FIRST_YEAR}_{year}.csv"
+        _write_csv(frame[frame["year"] <= year], path)
+    else:
+        path = out_dir / f"regional_jobs_{year}.csv"
+        _write_csv(frame[frame["year"] == year], path)
+    return path
+
+
 def _default_out_dir() -> Path:
     # workflow/panelpipe/demo.py -> the repository root is two folders above the package.
     return Path(__file__).resolve().parents[2] / "config" / "demo"
@@ -383,7 +406,18 @@ def main(argv: Sequence[str] | None = None) -> int:
         default=_default_out_dir(),
         help="folder to write into (default: config/demo in the repository)",
     )
+    parser.add_argument(
+        "--year",
+        type=int,
+        help="write only this year's delivery into OUT_DIR (for the yearly-update example)",
+    )
+    parser.add_argument(
+        "--history", action="store_true", help="with --year: every year up to YEAR in one file"
+    )
     args = parser.parse_args(argv)
+    if args.year is not None:
+        print(write_delivery(args.out_dir, args.year, history=args.history))
+        return 0
     for path in write_demo(args.out_dir):
         print(path)
     return 0
