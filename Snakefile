@@ -1,4 +1,4 @@
-# panelpipe: ingest -> validate -> estimate -> compare -> report, one run folder per analysis.
+# panelpipe: ingest -> validate -> estimate -> compare and diagnose -> report, one run folder per analysis.
 from snakemake.utils import min_version
 
 min_version("8.0")
@@ -16,6 +16,7 @@ include: "workflow/rules/ingest.smk"
 include: "workflow/rules/validate.smk"
 include: "workflow/rules/estimate.smk"
 include: "workflow/rules/compare.smk"
+include: "workflow/rules/diagnose.smk"
 include: "workflow/rules/report.smk"
 
 

@@ -6,14 +6,48 @@ and p-value where a test applies, the effect on the headline (focus) coefficient
 where one can be computed, and one plain sentence on what it means for the
 estimate. Every threshold is in `THRESHOLDS`.
 
-The audit fits nothing from scratch more often than it must. The within
-(unit-demeaned) data of the estimation sample are computed once; the RESET-type
-test and the one-way residuals add or drop columns of them. The lead and
-next-period-presence tests need a sub-sample, whose raw columns are demeaned
-again (O(NK)) because unit means depend on the rows kept. First differences are
-formed once and serve both the fixed-effects-versus-first-differences comparison
-and the serial-correlation test. Leave-one-cluster-out estimates come from
-cluster-level sums of the within data.
+=========================== ==================================================
+check                       method (flags when)
+=========================== ==================================================
+omitted_variables           coefficient path pooled -> unit -> unit and period
+                            effects; Oster's delta and bias-adjusted estimate
+                            with unit effects as the baseline (caution: the
+                            estimate is significant and abs(delta) < 1 or the
+                            identified set holds zero)
+strict_exogeneity           leads of the regressors added to the FE model, Wald
+                            F(q, G-1) (problem: rejects)
+functional_form             squares and cubes of the fitted index added to the
+                            FE model, Wald F(2, G-1) (caution: rejects)
+measurement_error           within share of each regressor's variance; FE minus
+                            FD over its jackknife SE, t(G-1) (caution: share
+                            below 0.10 or the difference is significant)
+attrition                   exits, late entries, gaps; next-period presence
+                            added to the FE model, t(G-1) confirmed by a wild
+                            cluster bootstrap (problem: both reject)
+serial_correlation          FD residuals on their lag, coefficient -0.5 under
+                            the null, t(G-1) (caution if the headline is
+                            clustered, else problem)
+cross_sectional_dependence  CD test in O(NT) on residuals before period effects
+                            (problem; caution when period effects are in the
+                            model)
+heteroskedasticity          studentised groupwise LM, chi2(n-1) (caution if the
+                            headline is clustered, else problem)
+few_clusters                count and sizes (problem below 30, caution below 50
+                            or one cluster above 20% of rows); wild bootstrap
+influential_clusters        leave-one-cluster-out from cluster sums, CV3
+                            (caution: a shift above one SE, CV3 > 1.5 CR1, or
+                            significance lost; problem: one cluster flips the
+                            sign of a significant estimate)
+=========================== ==================================================
+
+Tests use the CV3 jackknife covariance (`_Fit`) with F(q, G-1) and t(G-1)
+references. The audit fits nothing more often than it must: the within
+(unit-demeaned) data of the estimation sample are computed once, and the
+RESET-type test, the one-way residuals and the leave-one-cluster-out estimates
+reuse them. The lead and next-period-presence tests need a sub-sample, whose raw
+columns are demeaned again (O(NK)) because unit means depend on the rows kept.
+First differences are formed once and serve both the comparison with fixed
+effects and the serial-correlation test.
 """
 
 from __future__ import annotations
@@ -31,10 +65,22 @@ import scipy.linalg
 from scipy import stats
 
 from .bootstrap import wild_cluster_bootstrap
-from .estimate import Design, ModelResult, _demean
+from .estimate import INFERENCE_LABELS, Design, ModelResult, _demean
 from .validate import FEW_CLUSTERS
 
-__all__ = ["DIAGNOSTIC_KEYS", "THRESHOLDS", "Diagnostic", "Status", "run_audit"]
+__all__ = [
+    "DIAGNOSTIC_KEYS",
+    "THRESHOLDS",
+    "CrossSectionalDependence",
+    "Diagnostic",
+    "Status",
+    "groupwise_heteroskedasticity",
+    "leave_one_cluster_out",
+    "oster_beta_star",
+    "oster_delta",
+    "pesaran_cd",
+    "run_audit",
+]
 
 FloatArray = npt.NDArray[np.float64]
 IntArray = npt.NDArray[np.intp]
@@ -68,9 +114,6 @@ THRESHOLDS: Mapping[str, float] = MappingProxyType(
         # measurement error is strongly amplified by fixed effects (Griliches &
         # Hausman 1986). Judgement, no single source.
         "within_share_low": 0.10,
-        # |z| of the fixed-effects minus first-difference estimate beyond which the
-        # two are said to diverge (two-sided 5% normal critical value).
-        "fe_fd_divergence_z": 1.96,
         # Fewer clusters than this: cluster-robust inference is unreliable
         # (common practice; the same constant as validation's warning).
         "few_clusters": float(FEW_CLUSTERS),
@@ -84,7 +127,8 @@ THRESHOLDS: Mapping[str, float] = MappingProxyType(
         "influence_shift_se": 1.0,
         # The jackknife (CV3) standard error exceeds the CR1 one by this factor.
         "cv3_ratio": 1.5,
-        # Draws of the wild cluster bootstrap run by the few-clusters check.
+        # Draws of the wild cluster bootstraps the audit runs itself (few clusters,
+        # confirmation of the attrition test).
         "bootstrap_draws": 999.0,
     }
 )
@@ -224,9 +268,8 @@ class _Fit:
 
 def _group_sums(values: FloatArray, codes: IntArray, n: int) -> FloatArray:
     """Column sums of ``values`` (rows x K) within each of ``n`` groups."""
-    return np.column_stack(
-        [np.bincount(codes, weights=values[:, j], minlength=n) for j in range(values.shape[1])]
-    ).reshape(n, values.shape[1])
+    sums = [np.bincount(codes, weights=values[:, j], minlength=n) for j in range(values.shape[1])]
+    return np.asarray(np.column_stack(sums), dtype=np.float64).reshape(n, values.shape[1])
 
 
 def _cluster_fit(y: FloatArray, X: FloatArray, clusters: IntArray) -> _Fit:
@@ -272,7 +315,7 @@ def _independent(base: FloatArray, extra: FloatArray) -> IntArray:
 
 def _ssr(y: FloatArray, X: FloatArray) -> tuple[FloatArray, FloatArray]:
     """Coefficients and residuals of OLS of ``y`` on ``X`` (no covariance)."""
-    coef = np.linalg.lstsq(X, y, rcond=None)[0]
+    coef = np.asarray(np.linalg.lstsq(X, y, rcond=None)[0], dtype=np.float64)
     return coef, y - X @ coef
 
 
@@ -329,6 +372,7 @@ class _Index:
         out[ok] = table[key[ok] + step]
         return out
 
+    @cached_property
     def period_dummies(self) -> FloatArray:
         """A dummy for every period but the first (as in the estimation stage)."""
         d = np.zeros((len(self.period), max(self.n_periods - 1, 0)))
@@ -412,7 +456,7 @@ def _within(design: Design, fe: ModelResult, focus: str, index: _Index) -> _With
     terms = tuple(fe.terms)
     x_raw = design.x[list(terms)].to_numpy(dtype=float)
     y_raw = design.y.to_numpy(dtype=float)
-    d_all = index.period_dummies() if design.settings.period_effects else np.zeros((len(y_raw), 0))
+    d_all = index.period_dummies if design.settings.period_effects else np.zeros((len(y_raw), 0))
     x = _demean(x_raw, index.unit)
     d = _demean(d_all, index.unit) if d_all.shape[1] else d_all
     keep = _independent(x, d)
@@ -431,7 +475,7 @@ def _first_diff(design: Design, within: _Within, index: _Index) -> _FirstDiff:
     dy = within.y_raw[rows] - within.y_raw[before]
     dx = within.x_raw[rows] - within.x_raw[before]
     if design.settings.period_effects:
-        d_all = index.period_dummies()
+        d_all = index.period_dummies
         dd = d_all[rows] - d_all[before]
         dd = dd[:, _independent(dx, dd)]
     else:
@@ -521,9 +565,9 @@ def oster_delta(
         The coefficient value to be explained (0 asks "what explains it away").
     beta_short, r2_short
         Coefficient and R-squared of the regression of the outcome on the focus
-        regressor alone (with a constant).
+        regressor alone (plus whatever baseline both regressions share).
     beta_long, r2_long
-        The same with every observed control.
+        The same with every observed control added.
     r2_max
         R-squared of a hypothetical regression that also held the unobservables.
     var_y, var_x
@@ -619,7 +663,7 @@ def _omitted_variables(ctx: _Context) -> Diagnostic:
     y = w.y_raw
     pooled = _ssr(y, np.hstack([np.ones((len(y), 1)), x_all]))[0][1 + j_all]
     one_way = _ssr(w.y, w.x)[0][w.focus]
-    d_all = ctx.index.period_dummies()
+    d_all = ctx.index.period_dummies
     d_w = _demean(d_all, ctx.index.unit) if d_all.shape[1] else d_all
     d_w = d_w[:, _independent(w.x, d_w)]
     two_way = _ssr(w.y, np.hstack([w.x, d_w]))[0][w.focus]
@@ -636,7 +680,7 @@ def _omitted_variables(ctx: _Context) -> Diagnostic:
             "the fixed-effects model has no control besides the unit effects (no other "
             "regressor, no period effects), so no coefficient movement scales the bound"
         )
-        return Diagnostic(key, "not_run", f"Not run: {reason}.", details=movement, reason=reason)
+        return Diagnostic(key, "not_run", f"Not run: {reason}.", effect=movement, reason=reason)
     n = len(w.y)
     xf = w.x[:, w.focus]
     tss = float(w.y @ w.y)
@@ -732,7 +776,7 @@ def _strict_exogeneity(ctx: _Context) -> Diagnostic:
         message = (
             "Next-period values of the regressors help predict today's outcome, so shocks to "
             "the outcome appear to feed back into later regressors and the fixed-effects "
-            "estimate is biased (strict exogeneity fails)."
+            "estimate may be biased (strict exogeneity fails)."
         )
     else:
         status = "ok"
@@ -797,16 +841,6 @@ def _within_shares(design: Design, unit: IntArray) -> dict[str, float]:
     return {str(c): float(s) for c, s in zip(design.x.columns, shares, strict=True)}
 
 
-def _influence(fit: _Fit, j: int, labels: IntArray, n: int) -> FloatArray:
-    r"""Each cluster's contribution :math:`a_j'X_g'\hat u_g` to coefficient ``j``.
-
-    ``labels`` are cluster codes shared across fits, so that influences of two
-    fits on different rows (levels and differences) line up by cluster.
-    """
-    a = np.linalg.solve(fit.X.T @ fit.X, np.eye(fit.X.shape[1])[:, j])
-    return np.bincount(labels, weights=(fit.X @ a) * fit.resid, minlength=n)
-
-
 def _measurement_error(ctx: _Context) -> Diagnostic:
     key = "measurement_error"
     w = ctx.within
@@ -816,23 +850,28 @@ def _measurement_error(ctx: _Context) -> Diagnostic:
     low = share < THRESHOLDS["within_share_low"]
     b_fe, se_fe = float(w.fit.coef[w.focus]), w.fit.se(w.focus)
     effect: dict[str, Any] = {"fixed_effects": b_fe}
-    details: dict[str, Any] = {"within_share": shares, "reference": "N(0, 1)"}
+    details: dict[str, Any] = {
+        "within_share": shares,
+        "reference": f"t({ctx.index.n_clusters - 1})",
+        "covariance": "CV3 jackknife of the difference",
+    }
     z = p = None
     diverge = False
     if ctx.first_diff is not None:
         fd = ctx.first_diff.fit
         b_fd, se_fd = float(fd.coef[w.focus]), fd.se(w.focus)
-        g = ctx.index.n_clusters
         # Both estimates move with the same cluster shocks, so the variance of
-        # their difference is taken from the difference of their cluster
-        # influences; the sum of the two variances would be conservative.
-        gap = _influence(w.fit, w.focus, ctx.index.cluster, g) - _influence(
-            fd, w.focus, ctx.index.cluster[ctx.first_diff.rows], g
-        )
-        se_diff = float(np.sqrt(g / (g - 1) * (gap @ gap)))
+        # their difference is the jackknife variance of the difference itself;
+        # adding the two variances would be conservative.
+        g = ctx.index.n_clusters
+        drop_fe = w.fit.loo[:, w.focus]
+        drop_fd = np.full(g, b_fd)  # a cluster with no differences leaves FD unchanged
+        drop_fd[pd.unique(ctx.index.cluster[ctx.first_diff.rows])] = fd.loo[:, w.focus]
+        gap = (drop_fe - drop_fd) - (b_fe - b_fd)
+        se_diff = float(np.sqrt((g - 1) / g * np.nansum(gap**2)))
         z = (b_fe - b_fd) / se_diff
-        p = float(2.0 * stats.norm.sf(abs(z)))
-        diverge = abs(z) > THRESHOLDS["fe_fd_divergence_z"]
+        p = float(2.0 * stats.t.sf(abs(z), g - 1))
+        diverge = p < ctx.alpha
         effect |= {"first_difference": b_fd, "difference": b_fe - b_fd}
         details |= {
             "se_fixed_effects": se_fe,
@@ -857,6 +896,12 @@ def _measurement_error(ctx: _Context) -> Diagnostic:
         message = (
             f"Only {share_text}, so any measurement error in it is magnified by the fixed-effects "
             "transformation and may bias the estimate towards zero."
+        )
+    elif z is None:
+        status = "ok"
+        message = (
+            f"{share_text[0].upper()}{share_text[1:]}, enough that measurement error is not "
+            "unduly magnified by fixed effects (first differences could not be compared)."
         )
     else:
         status = "ok"
@@ -969,16 +1014,22 @@ def _attrition(ctx: _Context) -> Diagnostic:
 # ---------------------------------------------------------------- error structure
 
 
-def _se_consequence(ctx: _Context, what: str, remedy: str) -> tuple[Status, str]:
-    """Status and the clause on standard errors, given the headline inference."""
-    if ctx.clustered:
+def _se_consequence(
+    ctx: _Context, what: str, remedy: str, *, also_handled_by: str = "", effect: str = "unreliable"
+) -> tuple[Status, str]:
+    """Status and the sentence on standard errors, given the headline inference.
+
+    ``caution`` when the headline inference already allows for the problem
+    (clustered, or ``also_handled_by``), ``problem`` otherwise.
+    """
+    if ctx.clustered or ctx.headline == also_handled_by:
         return "caution", (
-            f"{what}, so classical standard errors are too small; the headline's clustered "
-            f"standard errors allow for this{remedy}."
+            f"{what}, so classical standard errors are {effect}; the headline's "
+            f"{INFERENCE_LABELS.get(ctx.headline, ctx.headline)} inference allows for this."
         )
-    return (
-        "problem",
-        f"{what}, so the headline's {ctx.headline} standard errors are unreliable{remedy}.",
+    return "problem", (
+        f"{what}, so the headline's {INFERENCE_LABELS.get(ctx.headline, ctx.headline)} "
+        f"standard errors are {effect}; {remedy}."
     )
 
 
@@ -1019,7 +1070,8 @@ def _serial_correlation(ctx: _Context) -> Diagnostic:
             ctx,
             f"Errors are correlated over time within units (implied autocorrelation "
             f"{_fmt(1.0 + 2.0 * rho)})",
-            "" if ctx.clustered else "; cluster by unit",
+            "cluster by unit (or use Driscoll–Kraay)",
+            effect="too small" if rho > -0.5 else "too large",
         )
     else:
         status = "ok"
@@ -1245,7 +1297,8 @@ def _heteroskedasticity(ctx: _Context) -> Diagnostic:
         status, message = _se_consequence(
             ctx,
             "The error variance differs across units",
-            "" if ctx.clustered else "; use robust or clustered standard errors",
+            "use heteroskedasticity-robust or clustered standard errors",
+            also_handled_by="robust",
         )
     else:
         status = "ok"
@@ -1409,7 +1462,6 @@ def _influential_clusters(ctx: _Context) -> Diagnostic:
     cv3 = float(np.sqrt((g - 1) / g * np.nansum(shift**2)))
     t_cv3 = b / cv3 if cv3 > 0 else float("inf")
     p_cv3 = float(2.0 * stats.t.sf(abs(t_cv3), g - 1))
-    p_cr1 = w.fit.t_test(w.focus)[1]
     stat = float(abs(shift[worst]) / se)
     labels = [str(c) for c in ix.cluster_labels]
     order = np.argsort(-np.abs(np.nan_to_num(shift)))[:10]
@@ -1429,7 +1481,7 @@ def _influential_clusters(ctx: _Context) -> Diagnostic:
         "clusters_not_recomputed": [labels[i] for i in np.flatnonzero(~finite)],
         "statistic": "largest change from leaving one cluster out, in CR1 standard errors",
     }
-    significant = p_cr1 < ctx.alpha
+    significant = ctx.headline_p() < ctx.alpha
     flips = significant and bool(np.any(np.sign(loo[finite]) != np.sign(b)))
     unstable = stat > THRESHOLDS["influence_shift_se"] or cv3 > THRESHOLDS["cv3_ratio"] * se
     lost = significant and p_cv3 >= ctx.alpha
@@ -1509,8 +1561,14 @@ def run_audit(
     2015) for cross-sectional dependence; Greene, *Econometric Analysis*, for
     groupwise heteroskedasticity; MacKinnon, Nielsen & Webb (2023, *J.
     Econometrics*) for few and influential clusters. Wald and t tests use the
-    CR1 cluster-robust covariance with F(q, G-1) and t(G-1) references (Cameron
-    & Miller 2015).
+    CV3 jackknife covariance (CR1 when a leave-one-cluster-out fit is singular)
+    with F(q, G-1) and t(G-1) references (Cameron & Miller 2015; MacKinnon,
+    Nielsen & Webb 2023).
+
+    The fixed-effects model is refitted once, on the within data, because the
+    estimation stage keeps coefficients and covariances but not residuals; the
+    refit reproduces its coefficients and CR1 standard errors. Clusters are
+    those of the first ``cluster_by`` column.
     """
     regressors = list(design.settings.regressors)
     focus = regressors[0] if focus is None else focus

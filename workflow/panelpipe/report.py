@@ -28,10 +28,12 @@ __all__ = [
     "SCHEMA_VERSION",
     "estimates_table",
     "history_figure",
+    "loco_figure",
     "paper_tables",
     "recommend",
     "render_html",
     "render_validation_page",
+    "residual_figure",
     "results_document",
 ]
 
@@ -270,7 +272,7 @@ def presence_figure(panel: pd.DataFrame, unit: str, period: str) -> str:
     grid = pd.crosstab(panel[unit], panel[period]).clip(upper=1)
     shown = grid.iloc[:80]
     fig, ax = plt.subplots(
-        figsize=(min(0.32 * grid.shape[1] + 2, 11), min(0.14 * len(shown) + 1.2, 9))
+        figsize=(min(0.32 * grid.shape[1] + 2, 9), min(0.07 * len(shown) + 1.2, 5.5))
     )
     ax.imshow(
         shown.to_numpy(), aspect="auto", cmap="Blues", vmin=0, vmax=1.3, interpolation="nearest"
@@ -306,6 +308,55 @@ def variance_share_figure(panel: pd.DataFrame, unit: str, regressors: Sequence[s
     ax.invert_yaxis()
     ax.legend(fontsize=8, loc="lower right", framealpha=0.9)
     ax.set_xlabel("share of variance")
+    fig.tight_layout()
+    return _svg(fig)
+
+
+def loco_figure(diagnostic: Mapping[str, Any]) -> str | None:
+    """Leave-one-cluster-out estimates of the focus coefficient, sorted."""
+    effect = diagnostic.get("effect") or {}
+    loo = effect.get("leave_one_out")
+    if not loo:
+        return None
+    labels = list(loo)
+    values = np.array([loo[k] if loo[k] is not None else np.nan for k in labels])
+    order = np.argsort(values)
+    est, se = effect.get("estimate"), effect.get("cr1_se")
+    shown = order if len(order) <= 60 else np.concatenate([order[:30], order[-30:]])
+    fig, ax = plt.subplots(figsize=(min(0.16 * len(shown) + 2, 11), 2.8))
+    x = np.arange(len(shown))
+    ax.plot(x, values[shown], "o", color=_PALETTE[0], ms=3.5)
+    if est is not None:
+        ax.axhline(est, color=_PALETTE[1], lw=1.2)
+        if se:
+            ax.axhspan(est - 1.96 * se, est + 1.96 * se, color=_PALETTE[1], alpha=0.15)
+    ax.set_xticks(x)
+    ax.set_xticklabels([str(labels[i]) for i in shown], rotation=90, fontsize=6)
+    ax.set_ylabel("estimate without the cluster", fontsize=8)
+    if len(order) > len(shown):
+        ax.set_title(f"the 30 lowest and 30 highest of {len(order)} clusters", fontsize=8)
+    fig.tight_layout()
+    return _svg(fig)
+
+
+def residual_figure(fitted: np.ndarray, resid: np.ndarray) -> str:
+    """Residuals against fitted values, and a normal quantile plot."""
+    from scipy import stats
+
+    rng = np.random.default_rng(0)
+    keep = rng.choice(len(resid), size=min(len(resid), 4000), replace=False)
+    fig, (a, b) = plt.subplots(1, 2, figsize=(9, 3.2))
+    a.scatter(fitted[keep], resid[keep], s=4, alpha=0.5, color=_PALETTE[0])
+    a.axhline(0.0, color="#999999", lw=0.8)
+    a.set_xlabel("fitted (within units)", fontsize=8)
+    a.set_ylabel("residual", fontsize=8)
+    (osm, osr), (slope, intercept, _) = stats.probplot(resid[keep])
+    b.plot(osm, osr, "o", ms=2.5, alpha=0.6, color=_PALETTE[0])
+    b.plot(osm, slope * np.asarray(osm) + intercept, color=_PALETTE[1], lw=1)
+    b.set_xlabel("normal quantiles", fontsize=8)
+    b.set_ylabel("residual quantiles", fontsize=8)
+    for ax in (a, b):
+        ax.tick_params(labelsize=7)
     fig.tight_layout()
     return _svg(fig)
 
@@ -369,9 +420,35 @@ _ENV.filters["pvalue"] = _pvalue
 _ENV.filters["term"] = term_label
 
 
+STATUS_MARKS = {"ok": "✔", "caution": "▲", "problem": "✖", "not_run": "○"}
+STATUS_WORDS = {"ok": "ok", "caution": "caution", "problem": "problem", "not_run": "not run"}
+DIAGNOSTIC_LABELS = {
+    "omitted_variables": "Omitted variables",
+    "strict_exogeneity": "Feedback and simultaneity",
+    "functional_form": "Functional form",
+    "measurement_error": "Measurement error",
+    "attrition": "Attrition and selection",
+    "serial_correlation": "Errors correlated within units",
+    "cross_sectional_dependence": "Errors correlated across units",
+    "heteroskedasticity": "Unequal error variances",
+    "few_clusters": "Few clusters",
+    "influential_clusters": "Influential clusters",
+}
+
+
 def render_html(context: Mapping[str, Any]) -> str:
     """Render the report page from a context built by the report step."""
     context = dict(context)
+    context.setdefault("status_marks", STATUS_MARKS)
+    context.setdefault("status_words", STATUS_WORDS)
+    context.setdefault("diagnostic_labels", DIAGNOSTIC_LABELS)
+    counts: dict[str, int] = {}
+    for d in context.get("diagnostics", {}).values():
+        counts[d["status"]] = counts.get(d["status"], 0) + 1
+    context.setdefault(
+        "audit_counts",
+        {k: counts[k] for k in ("problem", "caution", "ok", "not_run") if k in counts},
+    )
     context.setdefault("estimator_labels", ESTIMATOR_LABELS)
     context.setdefault("inference_labels", INFERENCE_LABELS)
     return _ENV.get_template("report.html.j2").render(**context)

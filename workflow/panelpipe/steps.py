@@ -23,18 +23,21 @@ from . import __version__
 from .changes import diff_runs, history, previous_run
 from .compare import TestResult, run_comparisons
 from .config import AnalysisSettings, analysis_settings, source_specs
-from .estimate import INTERCEPT, ModelResult, estimate_all, make_design
+from .diagnose import run_audit
+from .estimate import INTERCEPT, ModelResult, _demean, estimate_all, make_design
 from .findings import Finding, PanelpipeError
 from .ingest import read_panel
 from .report import (
     coefficient_figure,
     estimates_table,
     history_figure,
+    loco_figure,
     paper_tables,
     presence_figure,
     recommend,
     render_html,
     render_validation_page,
+    residual_figure,
     results_document,
     variance_share_figure,
 )
@@ -43,6 +46,7 @@ from .validate import validate_panel
 
 __all__ = [
     "compare_step",
+    "diagnose_step",
     "estimate_step",
     "ingest_step",
     "report_step",
@@ -153,6 +157,16 @@ def compare_step(settings: AnalysisSettings, panel_in: str, models_in: str, test
     _write_json(tests_out, {k: {**t.to_dict(), "valid": t.valid} for k, t in tests.items()})
 
 
+def diagnose_step(
+    settings: AnalysisSettings, panel_in: str, models_in: str, diagnostics_out: str
+) -> None:
+    """Run the validity audit on the fitted models."""
+    models, _ = _load_models(models_in)
+    design, _ = make_design(pd.read_parquet(panel_in), settings)
+    audit = run_audit(design, models, focus=settings.regressors[0])
+    _write_json(diagnostics_out, {k: d.to_dict() for k, d in audit.items()})
+
+
 def _load_tests(path: str) -> dict[str, TestResult]:
     doc = _read_json(path)
     return {
@@ -199,6 +213,22 @@ def _benchmarks(folder: Path) -> dict[str, float]:
     return times
 
 
+def _residuals(
+    panel: pd.DataFrame, settings: AnalysisSettings, models: Mapping[str, ModelResult]
+) -> str | None:
+    """The residual figure of the fixed-effects model (within transformation)."""
+    fe = models.get("fixed_effects")
+    if fe is None:
+        return None
+    design, _ = make_design(panel, settings)
+    x = pd.concat([design.x, design.period_dummies], axis=1)[list(fe.params.index)]
+    unit = pd.factorize(design.units)[0]
+    xw = _demean(x.to_numpy(), unit)
+    yw = _demean(design.y.to_numpy()[:, None], unit)[:, 0]
+    fitted = xw @ fe.params.to_numpy()
+    return residual_figure(fitted, yw - fitted)
+
+
 def report_step(
     settings: AnalysisSettings,
     run: str,
@@ -208,6 +238,7 @@ def report_step(
     validation_in: str,
     models_in: str,
     tests_in: str,
+    diagnostics_in: str,
     outputs: Mapping[str, str],
     config: Mapping[str, Any],
 ) -> None:
@@ -216,6 +247,7 @@ def report_step(
     validation = _read_json(validation_in)
     models, model_findings = _load_models(models_in)
     tests = _load_tests(tests_in)
+    diagnostics = _read_json(diagnostics_in)
     panel = pd.read_parquet(panel_in)
     findings = [
         Finding(f["code"], f["severity"], f["message"], f.get("where", {}))
@@ -249,6 +281,7 @@ def report_step(
             settings.to_dict(),
         )
     doc["changes"] = changes
+    doc["diagnostics"] = diagnostics
     runs = [
         *history(run_dir.parent),
         {
@@ -315,8 +348,11 @@ def report_step(
                 "presence": presence_figure(panel, settings.unit, settings.period),
                 "variance": variance_share_figure(panel, settings.unit, settings.regressors),
                 "history": history_figure(runs, recommended, focus),
+                "loco": loco_figure(diagnostics.get("influential_clusters", {})),
+                "residuals": _residuals(panel, settings, models),
             },
             "changes": changes,
+            "diagnostics": diagnostics,
             "versions": manifest["versions"],
             "settings_yaml": yaml.safe_dump(
                 settings.to_dict(), sort_keys=False, allow_unicode=True

@@ -225,8 +225,8 @@ def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) ->
     revised_rows = differs.any(axis=1)
     n_keys = int(group.drop_duplicates(keys).shape[0])
     if revised_rows.any():
-        cells = differs.loc[revised_rows].stack()
-        cells = cells[cells]
+        stacked = differs.loc[revised_rows].stack()
+        cells = stacked[stacked.to_numpy(dtype=bool)]
         records = []
         for row, col in cells.index[:_LISTED]:
             records.append(
@@ -237,7 +237,7 @@ def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) ->
                     "old": str(group.at[row, col]),
                     "new": str(last.at[row, col]),
                     "file": str(group.at[row, SOURCE]),
-                    "line": int(group.at[row, LINE]),
+                    "line": int(str(group.at[row, LINE])),
                 }
             )
         text = "; ".join(

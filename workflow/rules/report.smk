@@ -5,6 +5,7 @@ rule report:
         validation=run_path("work/validation.json"),
         models=run_path("work/models.json"),
         tests=run_path("work/tests.json"),
+        diagnostics=run_path("work/diagnostics.json"),
     output:
         html=protected(run_path("report.html")),
         results=protected(run_path("results.json")),

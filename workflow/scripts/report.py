@@ -9,6 +9,7 @@ with script_guard(snakemake.log[0]):
         validation_in=snakemake.input.validation,
         models_in=snakemake.input.models,
         tests_in=snakemake.input.tests,
+        diagnostics_in=snakemake.input.diagnostics,
         outputs=dict(snakemake.output.items()),
         config=snakemake.params.config,
     )
