@@ -145,14 +145,17 @@ def mundlak_test(design: Design, fe: ModelResult, cre: ModelResult | None = None
         return TestResult(name, null, invalid_reason="the covariance of the unit means is singular")
     df = len(means)
     clusters = int(design.clusters.nunique().min())
+    # W/q against F(q, G-1), matching the t(G-1) reference of the clustered t-tests
+    # (common practice with cluster-robust Wald tests, no single source).
     return TestResult(
         name,
         null,
         stat,
         df,
-        float(stats.chi2.sf(stat, df)),
-        f"Wald test of {df} unit-mean coefficient(s), CR1 cluster-robust covariance with "
-        f"{clusters} clusters; valid under heteroskedastic and serially correlated errors.",
+        float(stats.f.sf(stat / df, df, clusters - 1)),
+        f"Wald statistic W for {df} unit-mean coefficient(s), CR1 cluster-robust covariance "
+        f"with {clusters} clusters; p-value from W/{df} against F({df}, {clusters - 1}). Valid "
+        "under heteroskedastic and serially correlated errors.",
     )
 
 
