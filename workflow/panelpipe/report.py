@@ -267,7 +267,9 @@ def coefficient_figure(models: Mapping[str, ModelResult], regressors: Sequence[s
     return _svg(fig)
 
 
-def presence_figure(panel: pd.DataFrame, unit: str, period: str) -> str:
+def presence_figure(
+    panel: pd.DataFrame, unit: str, period: str, labels: Mapping[str, str] | None = None
+) -> str:
     """Which unit was observed in which period (filled = observed)."""
     grid = pd.crosstab(panel[unit], panel[period]).clip(upper=1)
     shown = grid.iloc[:80]
@@ -278,7 +280,8 @@ def presence_figure(panel: pd.DataFrame, unit: str, period: str) -> str:
         shown.to_numpy(), aspect="auto", cmap="Blues", vmin=0, vmax=1.3, interpolation="nearest"
     )
     ax.set_xticks(range(grid.shape[1]))
-    ax.set_xticklabels([str(c) for c in grid.columns], rotation=90, fontsize=7)
+    names = labels or {}
+    ax.set_xticklabels([names.get(str(c), str(c)) for c in grid.columns], rotation=90, fontsize=7)
     step = max(1, len(shown) // 20)
     ax.set_yticks(range(0, len(shown), step))
     ax.set_yticklabels([str(u) for u in shown.index[::step]], fontsize=7)

@@ -345,7 +345,9 @@ def report_step(
             },
             "figures": {
                 "coefficients": coefficient_figure(models, settings.regressors),
-                "presence": presence_figure(panel, settings.unit, settings.period),
+                "presence": presence_figure(
+                    panel, settings.unit, settings.period, summary.get("period_labels")
+                ),
                 "variance": variance_share_figure(panel, settings.unit, settings.regressors),
                 "history": history_figure(runs, recommended, focus),
                 "loco": loco_figure(diagnostics.get("influential_clusters", {})),
