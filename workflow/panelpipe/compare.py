@@ -12,7 +12,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import pandas as pd
 from scipy import stats
 
 from .estimate import MEAN_PREFIX, Design, ModelResult
@@ -178,7 +177,7 @@ def breusch_pagan_lm(design: Design) -> TestResult:
     y = design.y.to_numpy()
     coef, *_ = np.linalg.lstsq(x, y, rcond=None)
     e = y - x @ coef
-    unit = pd.factorize(design.units)[0]
+    unit = design.unit_codes
     sums = np.bincount(unit, weights=e)
     counts = np.bincount(unit)
     n = len(e)

@@ -21,6 +21,11 @@ from linearmodels.panel import (
     PooledOLS,
     RandomEffects,
 )
+from linearmodels.panel.covariance import (
+    ClusteredCovariance,
+    DriscollKraay,
+    HeteroskedasticCovariance,
+)
 from scipy import stats
 
 from .bootstrap import wild_cluster_bootstrap
@@ -73,13 +78,24 @@ class Design:
     period_dummies: pd.DataFrame
     clusters: pd.DataFrame
     settings: AnalysisSettings
+    unit_names: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=object))
 
     @property
     def nobs(self) -> int:
         return len(self.y)
 
     @property
+    def unit_codes(self) -> np.ndarray:
+        """Integer unit codes 0..G-1 in the order of the sorted unit names."""
+        index = self.y.index
+        assert isinstance(index, pd.MultiIndex)
+        return np.asarray(index.codes[0])
+
+    @property
     def units(self) -> pd.Index:
+        """The unit of each row, by name (plain Python strings)."""
+        if len(self.unit_names):
+            return pd.Index(self.unit_names[self.unit_codes], dtype=object)
         return self.y.index.get_level_values(0)
 
     @property
@@ -196,8 +212,13 @@ def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design
     cols = [s.outcome, *s.regressors]
     keep = panel[cols].notna().all(axis=1)
     data = panel.loc[keep].sort_values([s.unit, s.period], kind="stable")
+    # Units enter the index as integer codes: linearmodels groups on them many times
+    # per fit, and integers are far cheaper to hash and compare than text.
+    unit_codes, unit_names = pd.factorize(
+        data[s.unit].astype(str).to_numpy(dtype=object), sort=True
+    )
     index = pd.MultiIndex.from_arrays(
-        [data[s.unit].astype(str).to_numpy(), data[s.period].to_numpy()], names=[s.unit, s.period]
+        [unit_codes.astype(np.int64), data[s.period].to_numpy()], names=[s.unit, s.period]
     )
     y = pd.Series(data[s.outcome].to_numpy(dtype=float), index=index, name=s.outcome)
     x = pd.DataFrame(
@@ -215,7 +236,8 @@ def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design
         {c: pd.factorize(data[c].astype(str).to_numpy())[0] for c in s.cluster_by}, index=index
     )
     findings: list[Finding] = []
-    return Design(y, x, dummies, clusters, s), findings
+    names = np.asarray(unit_names, dtype=object)
+    return Design(y, x, dummies, clusters, s, names), findings
 
 
 # ---------------------------------------------------------------- identification
@@ -233,7 +255,7 @@ def _demean(values: np.ndarray, codes: np.ndarray) -> np.ndarray:
 def _transformed(design: Design, key: str) -> np.ndarray:
     """The regressors as the estimator sees them after removing its effects."""
     x = design.x.to_numpy()
-    unit = pd.factorize(design.units)[0]
+    unit = design.unit_codes
     period = pd.factorize(design.periods)[0]
     two_way = design.settings.period_effects
     if key == "between":
@@ -261,7 +283,7 @@ def first_difference_rows(design: Design) -> np.ndarray:
     A gap breaks the chain: the difference across a missing period is not
     formed, as linearmodels' first-difference estimator does.
     """
-    unit = pd.factorize(design.units)[0]
+    unit = design.unit_codes
     periods = np.sort(design.periods.unique())
     pos = np.searchsorted(periods, design.periods.to_numpy())
     ok = (unit[1:] == unit[:-1]) & (pos[1:] == pos[:-1] + 1)
@@ -481,14 +503,14 @@ def _bootstrap_inputs(
     names = [str(c) for c in x.columns]
     xv = x.to_numpy()
     clusters = design.clusters.iloc[:, 0].to_numpy()
-    unit = pd.factorize(design.units)[0]
+    unit = design.unit_codes
     if estimator == "fixed_effects":
         return _demean(y[:, None], unit)[:, 0], _demean(xv, unit), names, clusters
     if estimator == "first_difference":
         rows = first_difference_rows(design)
         return y[rows] - y[rows - 1], xv[rows] - xv[rows - 1], names, clusters[rows]
     if estimator in {"random_effects", "correlated_random_effects"}:
-        theta = res.theta.iloc[:, 0].reindex(design.units).to_numpy()
+        theta = res.theta.iloc[:, 0].reindex(design.unit_codes).to_numpy()
         counts = np.bincount(unit)
         ybar = np.bincount(unit, weights=y) / counts
         xbar = _unit_means(xv, unit)
@@ -546,6 +568,73 @@ def _wild_bootstrap(
     )
 
 
+@dataclass(frozen=True)
+class _Refit:
+    """What `_inference` reads of a fit: its parameters, covariance and sizes."""
+
+    params: pd.Series
+    cov: pd.DataFrame
+    nobs: int
+    df_resid: float
+
+
+_FAST = {"pooled_ols", "fixed_effects", "random_effects", "correlated_random_effects"}
+
+
+def _covariance_from_fit(
+    key: str, estimator: str, design: Design, model: Any, first: Any
+) -> pd.DataFrame | None:
+    """Another covariance for a fitted model, without fitting it again.
+
+    linearmodels recomputes the whole fit (transformation, least squares,
+    R-squared and F statistics) for every covariance type; here its covariance
+    estimators are applied to the transformed data the first fit used, with the
+    degrees-of-freedom rules linearmodels applies (effects counted except under
+    clustering on a variable that nests the units). Returns None where only a
+    refit is safe (two-way clustering, first differences, between).
+    tests/test_estimate_covariance.py checks every fast path against a refit.
+    """
+    if estimator not in _FAST or design.clusters.shape[1] != 1:
+        return None
+    data = _bootstrap_inputs(estimator, design, model, first)
+    if data is None:
+        return None
+    y, x, names, _ = data
+    params = first.params[names].to_numpy()
+    periods = np.sort(design.periods.unique())
+    time_ids = np.searchsorted(periods, design.periods.to_numpy())[:, None]
+    entity_ids = design.unit_codes[:, None]
+    extra_df = 0
+    if estimator == "fixed_effects":
+        nested = bool(
+            key == "cluster"
+            and design.clusters.iloc[:, 0].groupby(design.unit_codes).nunique().max() == 1
+        )
+        extra_df = 0 if nested else len(design.unit_names) or int(design.units.nunique())
+    args = (y[:, None], x, params[:, None], entity_ids, time_ids)
+    if key == "robust":
+        est: Any = HeteroskedasticCovariance(*args, debiased=True, extra_df=extra_df)
+    elif key == "cluster":
+        est = ClusteredCovariance(
+            *args,
+            debiased=True,
+            extra_df=extra_df,
+            clusters=design.clusters.iloc[:, 0].to_numpy()[:, None],
+            group_debias=True,
+        )
+    elif key == "driscoll_kraay":
+        est = DriscollKraay(
+            *args,
+            debiased=True,
+            extra_df=extra_df,
+            kernel="bartlett",
+            bandwidth=dk_bandwidth(design),
+        )
+    else:
+        return None
+    return pd.DataFrame(est.cov, index=names, columns=names)
+
+
 def _fit_one(
     estimator: str,
     design: Design,
@@ -556,17 +645,23 @@ def _fit_one(
 ) -> ModelResult:
     model = _model(estimator, design, terms)
     results: dict[str, InferenceResult] = {}
-    first: Any = None
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        first = model.fit(**_fit_kwargs("classical", design, estimator))
     for key in inference:
         if key == "wild_bootstrap" or (key == "driscoll_kraay" and estimator == "between"):
             continue  # the bootstrap follows; unit means have no time dimension left
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            res = model.fit(**_fit_kwargs(key, design, estimator))
-        first = first if first is not None else res
+        if key == "classical":
+            res: Any = first
+        else:
+            cov = _covariance_from_fit(key, estimator, design, model, first)
+            if cov is not None:
+                res = _Refit(first.params, cov, int(first.nobs), float(first.df_resid))
+            else:
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore")
+                    res = model.fit(**_fit_kwargs(key, design, estimator))
         results[key] = _inference(key, res, design, level)
-    if first is None:  # only the bootstrap was asked for: a classical fit gives the point estimates
-        first = model.fit(**_fit_kwargs("classical", design, estimator))
     if "wild_bootstrap" in inference:
         boot = _wild_bootstrap(estimator, design, model, first, terms, level)
         if boot is not None:

@@ -222,7 +222,7 @@ def _residuals(
         return None
     design, _ = make_design(panel, settings)
     x = pd.concat([design.x, design.period_dummies], axis=1)[list(fe.params.index)]
-    unit = pd.factorize(design.units)[0]
+    unit = design.unit_codes
     xw = _demean(x.to_numpy(), unit)
     yw = _demean(design.y.to_numpy()[:, None], unit)[:, 0]
     fitted = xw @ fe.params.to_numpy()
