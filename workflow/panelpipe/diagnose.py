@@ -62,6 +62,7 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 import scipy.linalg
+import scipy.sparse
 from scipy import stats
 
 from .bootstrap import wild_cluster_bootstrap
@@ -266,10 +267,15 @@ class _Fit:
         return f, float(stats.f.sf(f, len(cols), self.clusters - 1))
 
 
+def _indicator(codes: IntArray, n: int) -> scipy.sparse.csr_matrix:
+    """The sparse n x rows matrix that sums rows by group."""
+    rows = len(codes)
+    return scipy.sparse.csr_matrix((np.ones(rows), (codes, np.arange(rows))), shape=(n, rows))
+
+
 def _group_sums(values: FloatArray, codes: IntArray, n: int) -> FloatArray:
     """Column sums of ``values`` (rows x K) within each of ``n`` groups."""
-    sums = [np.bincount(codes, weights=values[:, j], minlength=n) for j in range(values.shape[1])]
-    return np.asarray(np.column_stack(sums), dtype=np.float64).reshape(n, values.shape[1])
+    return np.asarray(_indicator(codes, n) @ values, dtype=np.float64).reshape(n, values.shape[1])
 
 
 def _cluster_fit(y: FloatArray, X: FloatArray, clusters: IntArray) -> _Fit:
@@ -944,10 +950,16 @@ def _attrition(ctx: _Context) -> Diagnostic:
         )
     rows = np.flatnonzero(ix.period < t - 1)
     present = (ix.shifted(1)[rows] >= 0).astype(float)[:, None]
-    summary = (
-        f"{pattern['units_dropping_out']} unit(s) drop out, {pattern['units_entering_late']} "
-        f"enter late and {pattern['units_with_gaps']} have gaps"
-    )
+    parts = [
+        f"{n} unit(s) {what}"
+        for n, what in (
+            (pattern["units_dropping_out"], "drop out"),
+            (pattern["units_entering_late"], "enter late"),
+            (pattern["units_with_gaps"], "have gaps"),
+        )
+        if n
+    ]
+    summary = ", ".join(parts[:-1]) + (" and " if len(parts) > 1 else "") + parts[-1]
     try:
         out = _subsample_fit(ctx, rows, present)
     except np.linalg.LinAlgError as exc:
@@ -1424,18 +1436,25 @@ def leave_one_cluster_out(
     unchanged (MacKinnon, Nielsen & Webb 2023, section on the CV3 jackknife).
     """
     k = X.shape[1]
-    a = X.T @ X
-    b = X.T @ y
-    a_g = np.stack(
-        [_group_sums(X * X[:, [j]], clusters, n_clusters) for j in range(k)], axis=1
-    )  # G x K x K
-    b_g = _group_sums(X * y[:, None], clusters, n_clusters)
-    lhs, rhs = a[None] - a_g, b[None] - b_g
+    sums = _indicator(clusters, n_clusters)
+    a_g = np.stack([np.asarray(sums @ (X * X[:, [j]])) for j in range(k)], axis=1)  # G x K x K
+    b_g = np.asarray(sums @ (X * y[:, None]))
+    full = X.T @ X
+    lhs = full[None] - a_g
+    rhs = (X.T @ y)[None] - b_g
     out = np.full((n_clusters, k), np.nan)
-    cond = np.linalg.cond(lhs)
-    ok = cond < 1e12
-    if ok.any():
+    # Without cluster g a column may lose all its variation (a period observed
+    # only there); those rows stay NaN. Other singular cases are caught one by one.
+    left = np.diagonal(lhs, axis1=1, axis2=2)
+    ok = (left > 1e-10 * np.diag(full)[None, :]).all(axis=1)
+    try:
         out[ok] = np.linalg.solve(lhs[ok], rhs[ok][..., None])[..., 0]
+    except np.linalg.LinAlgError:
+        for g in np.flatnonzero(ok):
+            try:
+                out[g] = np.linalg.solve(lhs[g], rhs[g])
+            except np.linalg.LinAlgError:
+                continue
     return out
 
 
@@ -1464,7 +1483,9 @@ def _influential_clusters(ctx: _Context) -> Diagnostic:
     p_cv3 = float(2.0 * stats.t.sf(abs(t_cv3), g - 1))
     stat = float(abs(shift[worst]) / se)
     labels = [str(c) for c in ix.cluster_labels]
-    order = np.argsort(-np.abs(np.nan_to_num(shift)))[:10]
+    # Every cluster's estimate when there are few; else the 30 lowest and highest.
+    ranked = np.argsort(np.where(finite, loo, np.inf))[: int(finite.sum())]
+    order = ranked if len(ranked) <= 60 else np.concatenate([ranked[:30], ranked[-30:]])
     effect = {
         "estimate": b,
         "range": [float(np.nanmin(loo)), float(np.nanmax(loo))],

@@ -425,8 +425,12 @@ def fit_mundlak(design: Design, varying: list[str]) -> tuple[pd.Series, pd.DataF
     model = _model("correlated_random_effects", design, varying)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        res = model.fit(**_fit_kwargs("cluster", design, "correlated_random_effects"))
-    return res.params, res.cov
+        first = model.fit(**_fit_kwargs("classical", design, "correlated_random_effects"))
+        cov = _covariance_from_fit("cluster", "correlated_random_effects", design, model, first)
+        if cov is None:
+            refit = model.fit(**_fit_kwargs("cluster", design, "correlated_random_effects"))
+            return refit.params, refit.cov
+    return first.params, cov
 
 
 def _reference(key: str, res: Any, design: Design) -> tuple[str, float]:
