@@ -106,25 +106,15 @@ def _clear_stale_snakemake_lock(workdir: Path) -> None:
 
     Called while panelpipe's own lock on the output folder is held, so no other
     panelpipe run is active; a lock left in .snakemake/locks is then stale.
+    Removing its files is what ``snakemake --unlock`` does, without parsing the
+    workflow again.
     """
     locks = workdir / ".snakemake" / "locks"
-    if locks.is_dir() and any(locks.iterdir()):
+    stale = [p for p in locks.iterdir() if p.is_file()] if locks.is_dir() else []
+    if stale:
         sys.stderr.write("panelpipe: removing a stale Snakemake lock left by an interrupted run\n")
-        subprocess.call(
-            [
-                sys.executable,
-                "-m",
-                "snakemake",
-                "--snakefile",
-                str(REPO_ROOT / "Snakefile"),
-                "--directory",
-                str(workdir),
-                "--unlock",
-                "--cores",
-                "1",
-            ],
-            stdout=subprocess.DEVNULL,
-        )
+        for path in stale:
+            path.unlink(missing_ok=True)
 
 
 def _check(args: argparse.Namespace) -> int:
