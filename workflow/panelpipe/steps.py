@@ -14,35 +14,25 @@ import sys
 from collections.abc import Iterator, Mapping, Sequence
 from importlib import metadata
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import pandas as pd
 import yaml
 
 from . import __version__
-from .changes import diff_runs, history, previous_run
-from .compare import TestResult, run_comparisons
 from .config import AnalysisSettings, analysis_settings, source_specs
-from .diagnose import run_audit
-from .estimate import INTERCEPT, ModelResult, _demean, estimate_all, make_design
 from .findings import Finding, PanelpipeError
 from .ingest import read_panel
-from .report import (
-    coefficient_figure,
-    estimates_table,
-    history_figure,
-    loco_figure,
-    paper_tables,
-    presence_figure,
-    recommend,
-    render_html,
-    render_validation_page,
-    residual_figure,
-    results_document,
-    variance_share_figure,
-)
 from .runs import atomic_write_text, file_digest, update_latest
 from .validate import validate_panel
+
+if TYPE_CHECKING:
+    from .compare import TestResult
+    from .estimate import ModelResult
+
+# Each workflow step runs in its own process: the heavy stage modules (linearmodels,
+# scipy.stats, matplotlib) are imported inside the steps that need them, so that
+# ingest and validation start in a fraction of the time.
 
 __all__ = [
     "compare_step",
@@ -92,6 +82,8 @@ def validate_step(
     settings: AnalysisSettings, raw_in: str, panel_out: str, validation_out: str
 ) -> None:
     """Validate the stacked panel; on errors write the findings and stop."""
+    from .report import render_validation_page
+
     raw = pd.read_parquet(raw_in)
     result = validate_panel(raw, settings)
     doc = {"analysis": settings.name, **result.to_dict()}
@@ -125,6 +117,8 @@ def validate_step(
 
 def estimate_step(settings: AnalysisSettings, panel_in: str, models_out: str) -> None:
     """Fit every configured estimator on the validated panel."""
+    from .estimate import estimate_all, make_design
+
     panel = pd.read_parquet(panel_in)
     design, findings = make_design(panel, settings)
     models, more = estimate_all(design)
@@ -141,6 +135,8 @@ def estimate_step(settings: AnalysisSettings, panel_in: str, models_out: str) ->
 
 
 def _load_models(path: str) -> tuple[dict[str, ModelResult], list[Finding]]:
+    from .estimate import ModelResult
+
     doc = _read_json(path)
     models = {k: ModelResult.from_dict(k, v) for k, v in doc["models"].items()}
     findings = [
@@ -151,6 +147,9 @@ def _load_models(path: str) -> tuple[dict[str, ModelResult], list[Finding]]:
 
 def compare_step(settings: AnalysisSettings, panel_in: str, models_in: str, tests_out: str) -> None:
     """Run the comparison tests between the fitted estimators."""
+    from .compare import run_comparisons
+    from .estimate import make_design
+
     models, _ = _load_models(models_in)
     design, _ = make_design(pd.read_parquet(panel_in), settings)
     tests = run_comparisons(design, models)
@@ -161,6 +160,9 @@ def diagnose_step(
     settings: AnalysisSettings, panel_in: str, models_in: str, diagnostics_out: str
 ) -> None:
     """Run the validity audit on the fitted models."""
+    from .diagnose import run_audit
+    from .estimate import make_design
+
     models, _ = _load_models(models_in)
     design, _ = make_design(pd.read_parquet(panel_in), settings)
     audit = run_audit(design, models, focus=settings.regressors[0])
@@ -168,6 +170,8 @@ def diagnose_step(
 
 
 def _load_tests(path: str) -> dict[str, TestResult]:
+    from .compare import TestResult
+
     doc = _read_json(path)
     return {
         k: TestResult(
@@ -217,6 +221,9 @@ def _residuals(
     panel: pd.DataFrame, settings: AnalysisSettings, models: Mapping[str, ModelResult]
 ) -> str | None:
     """The residual figure of the fixed-effects model (within transformation)."""
+    from .estimate import _demean, make_design
+    from .report import residual_figure
+
     fe = models.get("fixed_effects")
     if fe is None:
         return None
@@ -243,6 +250,21 @@ def report_step(
     config: Mapping[str, Any],
 ) -> None:
     """Assemble results.json, estimates.csv, manifest.json and report.html."""
+    from .changes import diff_runs, history, previous_run
+    from .estimate import INTERCEPT
+    from .report import (
+        coefficient_figure,
+        estimates_table,
+        history_figure,
+        loco_figure,
+        paper_tables,
+        presence_figure,
+        recommend,
+        render_html,
+        results_document,
+        variance_share_figure,
+    )
+
     sources: Sequence[dict[str, Any]] = _read_json(sources_in)
     validation = _read_json(validation_in)
     models, model_findings = _load_models(models_in)
