@@ -60,3 +60,24 @@ def test_fast_covariance_equals_refit(
     np.testing.assert_allclose(
         fast.to_numpy(), refit.cov.loc[fast.index, fast.columns].to_numpy(), rtol=1e-9, atol=1e-14
     )
+
+
+def test_mundlak_regression_equals_linearmodels_pooled_ols(make_panel) -> None:
+    """Reference: linearmodels PooledOLS with unit means and CR1 clustered errors."""
+    from linearmodels.panel import PooledOLS
+
+    from panelpipe.compare import _mundlak_fit
+
+    panel = make_panel(n_units=30, n_periods=8)
+    design, _ = make_design(panel, _settings(("unit",), True))
+    params, cov = _mundlak_fit(design, ["x1", "x2"])
+    x = pd.DataFrame({"_intercept": 1.0}, index=design.y.index).join(design.x)
+    x = x.join(design.period_dummies)
+    for term in ("x1", "x2"):
+        x[f"_unit_mean_{term}"] = design.x[term].groupby(level=0).transform("mean")
+    ref = PooledOLS(design.y, x).fit(
+        cov_type="clustered", cluster_entity=True, debiased=True, group_debias=True
+    )
+    names = list(ref.params.index)
+    np.testing.assert_allclose(params[names], ref.params, rtol=1e-10)
+    np.testing.assert_allclose(cov.loc[names, names], ref.cov, rtol=1e-9, atol=1e-14)

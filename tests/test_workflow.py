@@ -104,7 +104,7 @@ def test_demo_runs_end_to_end_and_a_rerun_does_no_work(workdir: Path) -> None:
     stamps = {p: p.stat().st_mtime_ns for p in run_dir.rglob("*") if p.is_file()}
     again = run(workdir, "run", "--config", str(cfg))
     assert again.returncode == 0
-    assert "Nothing to be done" in again.stdout + again.stderr
+    assert "every analysis is up to date" in again.stderr
     assert json.loads(again.stdout.strip().splitlines()[-1])["status"] == "unchanged"
     assert stamps == {p: p.stat().st_mtime_ns for p in run_dir.rglob("*") if p.is_file()}
     assert before == {p: p.read_bytes() for p in (workdir / "data").glob("*.csv")}

@@ -17,12 +17,10 @@ from pathlib import Path
 
 import yaml
 
-from .changes import compare_runs, render_changes
 from .config import REPO_ROOT, analysis_settings, load_config, source_specs, validate_config
 from .findings import PanelpipeError
 from .ingest import read_panel
 from .runs import plan_runs, run_lock
-from .survey import inspect_file, render_profile
 from .validate import validate_panel
 
 __all__ = ["main"]
@@ -71,7 +69,13 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
     existed = {name: (out / name / run / "report.html").is_file() for name, run in planned.items()}
     with run_lock(out):
         _clear_stale_snakemake_lock(workdir)
-        code = subprocess.call(cmd)
+        if all(existed.values()) and not args.dry_run and not extra:
+            # Every run folder is complete and protected, and its id covers inputs,
+            # settings and code: nothing can be out of date, so Snakemake is not started.
+            sys.stderr.write("panelpipe: every analysis is up to date; nothing to do\n")
+            code = 0
+        else:
+            code = subprocess.call(cmd)
     for name, run in planned.items():
         folder = out / name / run
         done = (folder / "report.html").is_file()
@@ -143,12 +147,16 @@ def _check(args: argparse.Namespace) -> int:
 
 
 def _inspect(args: argparse.Namespace) -> int:
+    from .survey import inspect_file, render_profile
+
     profile = inspect_file(Path(args.file), unit=args.unit, period=args.period)
     print(json.dumps(profile, indent=2, default=str) if args.json else render_profile(profile))
     return 0
 
 
 def _init(args: argparse.Namespace) -> int:
+    from .survey import inspect_file
+
     path = Path(args.file)
     profile = inspect_file(path, unit=args.unit, period=args.period)
     columns = [c["name"] for c in profile["columns"]]
@@ -197,6 +205,8 @@ def _init(args: argparse.Namespace) -> int:
 
 
 def _compare(args: argparse.Namespace) -> int:
+    from .changes import compare_runs, render_changes
+
     changes = compare_runs(Path(args.run_a), Path(args.run_b))
     print(json.dumps(changes, indent=2, default=str) if args.json else render_changes(changes))
     return 0

@@ -42,7 +42,6 @@ __all__ = [
     "InferenceResult",
     "ModelResult",
     "estimate_all",
-    "fit_mundlak",
     "make_design",
 ]
 
@@ -418,19 +417,6 @@ def _model(estimator: str, design: Design, terms: list[str]) -> Any:
         means.columns = [f"{MEAN_PREFIX}{c}" for c in varying]
         return RandomEffects(y, pd.concat([const, x, dummies, means], axis=1))
     raise ValueError(f"unknown estimator {estimator!r}")
-
-
-def fit_mundlak(design: Design, varying: list[str]) -> tuple[pd.Series, pd.DataFrame]:
-    """Random effects with unit means of ``varying`` added, CR1 clustered covariance."""
-    model = _model("correlated_random_effects", design, varying)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        first = model.fit(**_fit_kwargs("classical", design, "correlated_random_effects"))
-        cov = _covariance_from_fit("cluster", "correlated_random_effects", design, model, first)
-        if cov is None:
-            refit = model.fit(**_fit_kwargs("cluster", design, "correlated_random_effects"))
-            return refit.params, refit.cov
-    return first.params, cov
 
 
 def _reference(key: str, res: Any, design: Design) -> tuple[str, float]:
