@@ -63,6 +63,11 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
     ]
     if args.dry_run:
         cmd.append("--dry-run")
+    if "--resources" not in extra and "--executor" not in extra and "--profile" not in extra:
+        # Steps declare mem_mb; on one machine keep their sum within 80% of its memory.
+        import psutil
+
+        cmd += ["--resources", f"mem_mb={int(psutil.virtual_memory().total / 2**20 * 0.8)}"]
     cmd.extend(extra)
     out = Path(config["output_dir"])
     out = out if out.is_absolute() else workdir / out

@@ -8,6 +8,9 @@ rule compare:
         run_path("logs/compare.log"),
     benchmark:
         run_path("benchmarks/compare.tsv")
+    threads: 1
+    resources:
+        mem_mb=panel_mem_mb,
     params:
         settings=analysis_settings_of,
     script:

@@ -8,6 +8,9 @@ rule diagnose:
         run_path("logs/diagnose.log"),
     benchmark:
         run_path("benchmarks/diagnose.tsv")
+    threads: 1
+    resources:
+        mem_mb=panel_mem_mb,
     params:
         settings=analysis_settings_of,
     script:

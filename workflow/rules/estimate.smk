@@ -7,6 +7,9 @@ rule estimate:
         run_path("logs/estimate.log"),
     benchmark:
         run_path("benchmarks/estimate.tsv")
+    threads: 1
+    resources:
+        mem_mb=panel_mem_mb,
     params:
         settings=analysis_settings_of,
     script:

@@ -8,6 +8,9 @@ rule ingest:
         run_path("logs/ingest.log"),
     benchmark:
         run_path("benchmarks/ingest.tsv")
+    threads: 1
+    resources:
+        mem_mb=light_mem_mb,
     params:
         settings=analysis_settings_of,
     script:

@@ -17,6 +17,9 @@ rule report:
         run_path("logs/report.log"),
     benchmark:
         run_path("benchmarks/report.tsv")
+    threads: 1
+    resources:
+        mem_mb=light_mem_mb,
     params:
         settings=analysis_settings_of,
         config=analysis_config,

@@ -8,6 +8,9 @@ rule validate:
         run_path("logs/validate.log"),
     benchmark:
         run_path("benchmarks/validate.tsv")
+    threads: 1
+    resources:
+        mem_mb=light_mem_mb,
     params:
         settings=analysis_settings_of,
     script:
