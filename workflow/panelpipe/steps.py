@@ -20,7 +20,7 @@ import pandas as pd
 import yaml
 
 from . import __version__
-from .config import AnalysisSettings, analysis_settings, source_specs
+from .config import AnalysisSettings, source_specs
 from .findings import Finding, PanelpipeError
 from .ingest import read_panel
 from .runs import atomic_write_text, file_digest, update_latest
@@ -41,14 +41,8 @@ __all__ = [
     "ingest_step",
     "report_step",
     "script_guard",
-    "settings_from",
     "validate_step",
 ]
-
-
-def settings_from(name: str, analysis: Mapping[str, Any]) -> AnalysisSettings:
-    """Settings of one analysis from its (validated, defaulted) config entry."""
-    return analysis_settings({"analyses": {name: dict(analysis)}}, name)
 
 
 def _write_json(path: Path | str, doc: Any) -> None:
