@@ -28,6 +28,7 @@ import pytest
 from linearmodels.panel import PanelOLS
 from scipy import stats
 
+from _support import panel_settings
 from panelpipe.config import AnalysisSettings
 from panelpipe.diagnose import (
     DIAGNOSTIC_KEYS,
@@ -146,19 +147,12 @@ def settings(
     estimators: tuple[str, ...] = ("fixed_effects",),
     inference: tuple[str, ...] = ("classical", "cluster"),
 ) -> AnalysisSettings:
-    return AnalysisSettings(
-        name="simulated",
-        sources=("simulated.csv",),
-        unit="unit",
-        period="period",
-        outcome="y",
+    return panel_settings(
         regressors=regressors,
         period_effects=period_effects,
         cluster_by=cluster_by,
         estimators=estimators,
         inference=inference,
-        level=0.95,
-        gates={},
     )
 
 

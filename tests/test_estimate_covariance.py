@@ -12,25 +12,13 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from _support import panel_settings
 from panelpipe.config import AnalysisSettings
 from panelpipe.estimate import _covariance_from_fit, _fit_kwargs, _model, identifiable, make_design
 
 
 def _settings(cluster_by: tuple[str, ...], period_effects: bool) -> AnalysisSettings:
-    return AnalysisSettings(
-        name="c",
-        sources=(),
-        unit="unit",
-        period="period",
-        outcome="y",
-        regressors=("x1", "x2", "z"),
-        period_effects=period_effects,
-        cluster_by=cluster_by,
-        estimators=(),
-        inference=(),
-        level=0.95,
-        gates={},
-    )
+    return panel_settings(cluster_by=cluster_by, period_effects=period_effects)
 
 
 @pytest.mark.parametrize("period_effects", [True, False], ids=["two-way", "one-way"])

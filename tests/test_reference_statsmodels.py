@@ -25,6 +25,7 @@ import pytest
 import statsmodels.api as sm
 from scipy import stats
 
+from _support import panel_settings
 from panelpipe.compare import hausman
 from panelpipe.config import AnalysisSettings
 from panelpipe.estimate import INTERCEPT, ModelResult, estimate_all, make_design
@@ -43,19 +44,10 @@ def _settings(
     regressors: tuple[str, ...] = REGRESSORS,
     estimators: tuple[str, ...] = ESTIMATORS,
 ) -> AnalysisSettings:
-    return AnalysisSettings(
-        name="simulated",
-        sources=("simulated.csv",),
-        unit="unit",
-        period="period",
-        outcome="y",
+    return panel_settings(
         regressors=regressors,
         period_effects=period_effects,
-        cluster_by=("unit",),
         estimators=estimators,
-        inference=("classical", "cluster"),
-        level=0.95,
-        gates={},
     )
 
 

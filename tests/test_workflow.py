@@ -16,21 +16,12 @@ import pandas as pd
 import pytest
 import yaml
 
+from _support import run_panelpipe as run
 from panelpipe.config import REPO_ROOT
 
 pytestmark = pytest.mark.slow
 
 DEMO = REPO_ROOT / "config" / "demo"
-
-
-def run(cwd: Path, *args: str) -> subprocess.CompletedProcess[str]:
-    return subprocess.run(
-        [sys.executable, "-m", "panelpipe", *args],
-        cwd=cwd,
-        text=True,
-        capture_output=True,
-        timeout=600,
-    )
 
 
 def write_config(cwd: Path, analyses: dict) -> Path:
