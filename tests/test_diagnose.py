@@ -40,7 +40,8 @@ from panelpipe.diagnose import (
     pesaran_cd,
     run_audit,
 )
-from panelpipe.estimate import Design, ModelResult, _demean, estimate_all, make_design
+from panelpipe.estimate import Design, ModelResult, estimate_all, make_design
+from panelpipe.fit import demean
 
 FLAGGED = ("caution", "problem")
 
@@ -368,7 +369,7 @@ def _residual_panel(seed: int, missing: float) -> tuple[np.ndarray, ...]:
     resid = rng.normal(size=n * t) + 0.4 * loading[unit] * rng.normal(size=t)[period]
     keep = rng.uniform(size=n * t) >= missing
     unit, period, resid = unit[keep], period[keep], resid[keep]
-    resid = _demean(resid[:, None], unit)[:, 0]
+    resid = demean(resid[:, None], unit)[:, 0]
     return resid, unit, period
 
 
@@ -414,8 +415,8 @@ def test_leave_one_cluster_out_equals_refits(groups: int | None) -> None:
     result = run_audit(design, models)["influential_clusters"]
     x = pd.concat([design.x, design.period_dummies], axis=1)
     unit = pd.factorize(design.units)[0]
-    yw = _demean(design.y.to_numpy()[:, None], unit)[:, 0]
-    xw = _demean(x.to_numpy(), unit)
+    yw = demean(design.y.to_numpy()[:, None], unit)[:, 0]
+    xw = demean(x.to_numpy(), unit)
     cluster = design.clusters.iloc[:, 0].to_numpy()
     loo = leave_one_cluster_out(yw, xw, cluster, int(cluster.max()) + 1)
     for g in np.unique(cluster):

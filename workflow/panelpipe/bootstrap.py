@@ -16,7 +16,9 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 import scipy.linalg
-from scipy import optimize, stats
+from scipy import optimize
+
+from .distributions import t_ppf
 
 __all__ = ["WEBB_WEIGHTS", "BootstrapResult", "wild_cluster_bootstrap"]
 
@@ -513,7 +515,7 @@ def wild_cluster_bootstrap(
         return _p_value(sums.t_stat(theta0), moments.t_star(theta0), p_value_kind)
 
     alpha = 1.0 - level
-    crit = float(stats.t.ppf(1.0 - alpha / 2.0, n_clusters - 1))
+    crit = float(t_ppf(1.0 - alpha / 2.0, n_clusters - 1))
     if p_of(estimate) < alpha:
         ci_low = ci_high = float("nan")
         notes.append(

@@ -13,8 +13,8 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
+from .distributions import chi2_sf, f_sf
 from .estimate import MEAN_PREFIX, Design, ModelResult
 
 __all__ = [
@@ -104,7 +104,7 @@ def hausman(fe: ModelResult, re: ModelResult) -> TestResult:
             f"non-positive eigenvalue(s)); a generalised inverse on its positive part was "
             f"used, with df = {df}"
         )
-    return TestResult(name, null, stat, df, float(stats.chi2.sf(stat, df)), note)
+    return TestResult(name, null, stat, df, float(chi2_sf(stat, df)), note)
 
 
 def mundlak_test(design: Design, fe: ModelResult) -> TestResult:
@@ -150,7 +150,7 @@ def mundlak_test(design: Design, fe: ModelResult) -> TestResult:
         null,
         stat,
         df,
-        float(stats.f.sf(stat / df, df, clusters - 1)),
+        float(f_sf(stat / df, df, clusters - 1)),
         f"Wald statistic W for {df} unit-mean coefficient(s), CR1 cluster-robust covariance "
         f"with {clusters} clusters; p-value from W/{df} against F({df}, {clusters - 1}). Valid "
         "under heteroskedastic and serially correlated errors.",
@@ -232,7 +232,7 @@ def breusch_pagan_lm(design: Design) -> TestResult:
         return TestResult(name, null, invalid_reason="every unit is observed once")
     a = np.sum(sums**2) / np.sum(e**2) - 1.0
     stat = float(n**2 * a**2 / denom)
-    return TestResult(name, null, stat, 1, float(stats.chi2.sf(stat, 1)))
+    return TestResult(name, null, stat, 1, float(chi2_sf(stat, 1)))
 
 
 def unit_effects_f(fe: ModelResult) -> TestResult:

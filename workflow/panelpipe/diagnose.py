@@ -62,11 +62,11 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 import scipy.linalg
-import scipy.sparse
-from scipy import stats
 
 from .bootstrap import wild_cluster_bootstrap
-from .estimate import INFERENCE_LABELS, Design, ModelResult, _demean
+from .distributions import chi2_sf, f_sf, norm_sf, t_sf
+from .estimate import INFERENCE_LABELS, Design, ModelResult
+from .fit import demean, group_sums, ls_coefficients
 from .validate import FEW_CLUSTERS
 
 __all__ = [
@@ -257,25 +257,14 @@ class _Fit:
     def t_test(self, j: int, null: float = 0.0) -> tuple[float, float]:
         """t statistic (CV3, else CR1) and its two-sided p-value from t(G-1)."""
         t = (float(self.coef[j]) - null) / float(np.sqrt(self._test_cov()[j, j]))
-        return t, float(2.0 * stats.t.sf(abs(t), self.clusters - 1))
+        return t, float(2.0 * t_sf(abs(t), self.clusters - 1))
 
     def wald(self, cols: list[int]) -> tuple[float, float]:
         """Wald F that the coefficients ``cols`` are zero (CV3, else CR1); F(q, G-1)."""
         b = self.coef[cols]
         v = self._test_cov()[np.ix_(cols, cols)]
         f = float(b @ np.linalg.solve(v, b)) / len(cols)
-        return f, float(stats.f.sf(f, len(cols), self.clusters - 1))
-
-
-def _indicator(codes: IntArray, n: int) -> scipy.sparse.csr_matrix:
-    """The sparse n x rows matrix that sums rows by group."""
-    rows = len(codes)
-    return scipy.sparse.csr_matrix((np.ones(rows), (codes, np.arange(rows))), shape=(n, rows))
-
-
-def _group_sums(values: FloatArray, codes: IntArray, n: int) -> FloatArray:
-    """Column sums of ``values`` (rows x K) within each of ``n`` groups."""
-    return np.asarray(_indicator(codes, n) @ values, dtype=np.float64).reshape(n, values.shape[1])
+        return f, float(f_sf(f, len(cols), self.clusters - 1))
 
 
 def _cluster_fit(y: FloatArray, X: FloatArray, clusters: IntArray) -> _Fit:
@@ -297,7 +286,7 @@ def _cluster_fit(y: FloatArray, X: FloatArray, clusters: IntArray) -> _Fit:
     bread = np.linalg.inv(X.T @ X)
     coef = bread @ (X.T @ y)
     resid = y - X @ coef
-    scores = _group_sums(X * resid[:, None], codes, g)
+    scores = group_sums(X * resid[:, None], codes, g)
     factor = g / (g - 1) * (n - 1) / (n - k)
     cov = factor * bread @ (scores.T @ scores) @ bread
     return _Fit(coef, resid, cov, g, codes, X, y)
@@ -312,8 +301,8 @@ def _independent(base: FloatArray, extra: FloatArray) -> IntArray:
         return np.zeros(0, dtype=np.intp)
     rest = extra
     if base.shape[1]:
-        rest = extra - base @ np.linalg.lstsq(base, extra, rcond=None)[0]
-    _, r, piv = scipy.linalg.qr(rest, mode="economic", pivoting=True)
+        rest = extra - base @ ls_coefficients(base, extra)
+    r, piv = scipy.linalg.qr(rest, mode="r", pivoting=True)
     diag = np.abs(np.diag(r))
     rank = int(np.count_nonzero(diag > 1e-8 * scale))
     return np.sort(piv[:rank]).astype(np.intp)
@@ -321,7 +310,7 @@ def _independent(base: FloatArray, extra: FloatArray) -> IntArray:
 
 def _ssr(y: FloatArray, X: FloatArray) -> tuple[FloatArray, FloatArray]:
     """Coefficients and residuals of OLS of ``y`` on ``X`` (no covariance)."""
-    coef = np.asarray(np.linalg.lstsq(X, y, rcond=None)[0], dtype=np.float64)
+    coef = ls_coefficients(X, y)
     return coef, y - X @ coef
 
 
@@ -463,11 +452,11 @@ def _within(design: Design, fe: ModelResult, focus: str, index: _Index) -> _With
     x_raw = design.x[list(terms)].to_numpy(dtype=float)
     y_raw = design.y.to_numpy(dtype=float)
     d_all = index.period_dummies if design.settings.period_effects else np.zeros((len(y_raw), 0))
-    x = _demean(x_raw, index.unit)
-    d = _demean(d_all, index.unit) if d_all.shape[1] else d_all
+    x = demean(x_raw, index.unit)
+    d = demean(d_all, index.unit) if d_all.shape[1] else d_all
     keep = _independent(x, d)
     d, d_raw = d[:, keep], d_all[:, keep]
-    y = _demean(y_raw[:, None], index.unit)[:, 0]
+    y = demean(y_raw[:, None], index.unit)[:, 0]
     fit = _cluster_fit(y, np.hstack([x, d]), index.cluster)
     return _Within(terms, terms.index(focus), y_raw, x_raw, d_raw, y, x, d, fit)
 
@@ -530,14 +519,14 @@ def _subsample_fit(
     w = ctx.within
     assert w is not None
     unit = pd.factorize(ctx.index.unit[rows])[0].astype(np.intp)
-    x = _demean(w.x_raw[rows], unit)
-    d = _demean(w.d_raw[rows], unit) if w.d_raw.shape[1] else w.d_raw[rows]
+    x = demean(w.x_raw[rows], unit)
+    d = demean(w.d_raw[rows], unit) if w.d_raw.shape[1] else w.d_raw[rows]
     d = d[:, _independent(x, d)]
-    e = _demean(extra_raw, unit)
+    e = demean(extra_raw, unit)
     keep = _independent(np.hstack([x, d]), e)
     if len(keep) == 0:
         return None
-    y = _demean(w.y_raw[rows][:, None], unit)[:, 0]
+    y = demean(w.y_raw[rows][:, None], unit)[:, 0]
     X = np.hstack([x, d, e[:, keep]])
     fit = _cluster_fit(y, X, ctx.index.cluster[rows])
     first = x.shape[1] + d.shape[1]
@@ -670,7 +659,7 @@ def _omitted_variables(ctx: _Context) -> Diagnostic:
     pooled = _ssr(y, np.hstack([np.ones((len(y), 1)), x_all]))[0][1 + j_all]
     one_way = _ssr(w.y, w.x)[0][w.focus]
     d_all = ctx.index.period_dummies
-    d_w = _demean(d_all, ctx.index.unit) if d_all.shape[1] else d_all
+    d_w = demean(d_all, ctx.index.unit) if d_all.shape[1] else d_all
     d_w = d_w[:, _independent(w.x, d_w)]
     two_way = _ssr(w.y, np.hstack([w.x, d_w]))[0][w.focus]
     path = {"pooled_ols": pooled, "unit_effects": one_way, "unit_and_period_effects": two_way}
@@ -802,7 +791,7 @@ def _functional_form(ctx: _Context) -> Diagnostic:
     if sd == 0.0:
         return _not_run(key, "the fitted values do not vary")
     z = (index - index.mean()) / sd
-    powers = _demean(np.column_stack([z**2, z**3]), ctx.index.unit)
+    powers = demean(np.column_stack([z**2, z**3]), ctx.index.unit)
     keep = _independent(w.w, powers)
     if len(keep) == 0:
         return _not_run(key, "powers of the fitted values add nothing within units")
@@ -842,7 +831,7 @@ def _functional_form(ctx: _Context) -> Diagnostic:
 def _within_shares(design: Design, unit: IntArray) -> dict[str, float]:
     x = design.x.to_numpy(dtype=float)
     total = ((x - x.mean(axis=0)) ** 2).sum(axis=0)
-    within = (_demean(x, unit) ** 2).sum(axis=0)
+    within = (demean(x, unit) ** 2).sum(axis=0)
     shares = np.divide(within, total, out=np.zeros_like(total), where=total > 0)
     return {str(c): float(s) for c, s in zip(design.x.columns, shares, strict=True)}
 
@@ -876,7 +865,7 @@ def _measurement_error(ctx: _Context) -> Diagnostic:
         gap = (drop_fe - drop_fd) - (b_fe - b_fd)
         se_diff = float(np.sqrt((g - 1) / g * np.nansum(gap**2)))
         z = (b_fe - b_fd) / se_diff
-        p = float(2.0 * stats.t.sf(abs(z), g - 1))
+        p = float(2.0 * t_sf(abs(z), g - 1))
         diverge = p < ctx.alpha
         effect |= {"first_difference": b_fd, "difference": b_fe - b_fd}
         details |= {
@@ -1209,7 +1198,7 @@ def _cross_sectional_dependence(ctx: _Context) -> Diagnostic:
     cd = pesaran_cd(resid, ctx.index.unit, ctx.index.period)
     if not np.isfinite(cd.statistic):
         return _not_run(key, "no two units share a period")
-    p = float(2.0 * stats.norm.sf(abs(cd.statistic)))
+    p = float(2.0 * norm_sf(abs(cd.statistic)))
     effect = {
         "mean_correlation": cd.mean_correlation,
         "se_ratio_driscoll_kraay_to_cluster": ctx.se_ratio("driscoll_kraay", "cluster"),
@@ -1299,7 +1288,7 @@ def _heteroskedasticity(ctx: _Context) -> Diagnostic:
     lm, df = groupwise_heteroskedasticity(w.fit.resid, ctx.index.unit)
     if df < 1:
         return _not_run(key, "it needs at least two units observed in two or more periods")
-    p = float(stats.chi2.sf(lm, df))
+    p = float(chi2_sf(lm, df))
     effect = {
         "se_ratio_robust_to_classical": ctx.se_ratio("robust", "classical"),
         "se_ratio_cluster_to_classical": ctx.se_ratio("cluster", "classical"),
@@ -1436,25 +1425,40 @@ def leave_one_cluster_out(
     unchanged (MacKinnon, Nielsen & Webb 2023, section on the CV3 jackknife).
     """
     k = X.shape[1]
-    sums = _indicator(clusters, n_clusters)
-    a_g = np.stack([np.asarray(sums @ (X * X[:, [j]])) for j in range(k)], axis=1)  # G x K x K
-    b_g = np.asarray(sums @ (X * y[:, None]))
+    codes = np.asarray(clusters, dtype=np.intp)
+    if np.any(codes[1:] < codes[:-1]):
+        order = np.argsort(codes, kind="stable")
+        codes, X, y = codes[order], X[order], y[order]
+    starts = np.searchsorted(codes, np.arange(n_clusters))
+    sizes = np.diff(np.r_[starts, len(codes)])
     full = X.T @ X
-    lhs = full[None] - a_g
-    rhs = (X.T @ y)[None] - b_g
+    full_rhs = X.T @ y
+    floor = 1e-10 * np.diag(full)
     out = np.full((n_clusters, k), np.nan)
-    # Without cluster g a column may lose all its variation (a period observed
-    # only there); those rows stay NaN. Other singular cases are caught one by one.
-    left = np.diagonal(lhs, axis1=1, axis2=2)
-    ok = (left > 1e-10 * np.diag(full)[None, :]).all(axis=1)
-    try:
-        out[ok] = np.linalg.solve(lhs[ok], rhs[ok][..., None])[..., 0]
-    except np.linalg.LinAlgError:
-        for g in np.flatnonzero(ok):
+    # Clusters of equal size are stacked (m x size x K) so that their X_g'X_g come from
+    # one batched product, in chunks of bounded memory.
+    budget = 4_000_000
+    for size in np.unique(sizes[sizes > 0]):
+        same = np.flatnonzero(sizes == size)
+        per_chunk = max(1, budget // (int(size) * k + k * k))
+        for first in range(0, len(same), per_chunk):
+            chunk = same[first : first + per_chunk]
+            rows = starts[chunk][:, None] + np.arange(size)[None, :]
+            xb, yb = X[rows], y[rows]
+            lhs = full[None] - np.matmul(xb.transpose(0, 2, 1), xb)
+            rhs = full_rhs[None] - np.einsum("msk,ms->mk", xb, yb)
+            # Without cluster g a column may lose all its variation (a period observed
+            # only there); those rows stay NaN. Other singular cases are caught one by one.
+            ok = (np.diagonal(lhs, axis1=1, axis2=2) > floor[None, :]).all(axis=1)
+            good = chunk[ok]
             try:
-                out[g] = np.linalg.solve(lhs[g], rhs[g])
+                out[good] = np.linalg.solve(lhs[ok], rhs[ok][..., None])[..., 0]
             except np.linalg.LinAlgError:
-                continue
+                for g, a, b in zip(good, lhs[ok], rhs[ok], strict=True):
+                    try:
+                        out[g] = np.linalg.solve(a, b)
+                    except np.linalg.LinAlgError:
+                        continue
     return out
 
 
@@ -1480,7 +1484,7 @@ def _influential_clusters(ctx: _Context) -> Diagnostic:
     worst = int(np.nanargmax(np.abs(shift)))
     cv3 = float(np.sqrt((g - 1) / g * np.nansum(shift**2)))
     t_cv3 = b / cv3 if cv3 > 0 else float("inf")
-    p_cv3 = float(2.0 * stats.t.sf(abs(t_cv3), g - 1))
+    p_cv3 = float(2.0 * t_sf(abs(t_cv3), g - 1))
     stat = float(abs(shift[worst]) / se)
     labels = [str(c) for c in ix.cluster_labels]
     # Every cluster's estimate when there are few; else the 30 lowest and highest.

@@ -1,36 +1,34 @@
 """Estimate: fit every configured estimator with every configured inference.
 
-linearmodels does the fitting; this module prepares one common estimation
-sample, decides per estimator which regressors it can identify, and collects
-coefficients, covariances, intervals and p-values in plain typed objects.
+This module prepares one common estimation sample, decides per estimator which
+regressors it can identify, fits each estimator once through the numerical
+core in ``fit.py`` (checked against linearmodels in
+tests/test_fit_linearmodels.py) and collects coefficients, covariances,
+intervals and p-values under every inference in plain typed objects.
 """
 
 from __future__ import annotations
 
-import warnings
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 import pandas as pd
-from linearmodels.panel import (
-    BetweenOLS,
-    FirstDifferenceOLS,
-    PanelOLS,
-    PooledOLS,
-    RandomEffects,
-)
-from linearmodels.panel.covariance import (
-    ClusteredCovariance,
-    DriscollKraay,
-    HeteroskedasticCovariance,
-)
-from scipy import stats
 
 from .bootstrap import wild_cluster_bootstrap
 from .config import AnalysisSettings
+from .distributions import f_sf, t_ppf, t_sf
 from .findings import Finding
+from .fit import (
+    Regression,
+    between_means,
+    covariance,
+    demean,
+    least_squares,
+    random_effects_components,
+    triangular_factor,
+)
 from .validate import FEW_CLUSTERS
 
 __all__ = [
@@ -242,38 +240,37 @@ def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design
 # ---------------------------------------------------------------- identification
 
 
-def _demean(values: np.ndarray, codes: np.ndarray) -> np.ndarray:
-    counts = np.bincount(codes)
-    out = np.empty_like(values)
-    for j in range(values.shape[1]):
-        means = np.bincount(codes, weights=values[:, j]) / counts
-        out[:, j] = values[:, j] - means[codes]
-    return out
+def period_codes(design: Design) -> np.ndarray:
+    """Integer period codes 0..T-1 in period order."""
+    periods = design.periods
+    levels = np.sort(periods.unique())
+    return np.searchsorted(levels, periods.to_numpy()).astype(np.intp)
 
 
 def _transformed(design: Design, key: str) -> np.ndarray:
     """The regressors as the estimator sees them after removing its effects."""
     x = design.x.to_numpy()
     unit = design.unit_codes
-    period = pd.factorize(design.periods)[0]
     two_way = design.settings.period_effects
     if key == "between":
-        means = _unit_means(x, unit)
-        return _demean(means, np.zeros(len(means), dtype=np.int64))
+        return demean(between_means(x, unit), np.zeros(int(unit.max()) + 1, dtype=np.intp))
     if key == "first_difference":
         diff = first_differences(x, design)
-        return _demean(diff, np.zeros(len(diff), dtype=np.int64))
+        return demean(diff, np.zeros(len(diff), dtype=np.intp))
     if key == "fixed_effects":
-        out = _demean(x, unit)
+        out = demean(x, unit)
         if two_way:
+            period = period_codes(design)
             for _ in range(100):  # alternating projections for unbalanced two-way effects
                 before = out
-                out = _demean(_demean(out, period), unit)
+                out = demean(demean(out, period), unit)
                 if np.max(np.abs(out - before), initial=0.0) < 1e-10:
                     break
         return out
     # pooled, random effects and the Mundlak device keep unit-level variation
-    return _demean(x, period if two_way else np.zeros(len(x), dtype=np.int64))
+    if two_way:
+        return demean(x, period_codes(design))
+    return x - x.mean(axis=0)
 
 
 def first_difference_rows(design: Design) -> np.ndarray:
@@ -283,8 +280,7 @@ def first_difference_rows(design: Design) -> np.ndarray:
     formed, as linearmodels' first-difference estimator does.
     """
     unit = design.unit_codes
-    periods = np.sort(design.periods.unique())
-    pos = np.searchsorted(periods, design.periods.to_numpy())
+    pos = period_codes(design)
     ok = (unit[1:] == unit[:-1]) & (pos[1:] == pos[:-1] + 1)
     return np.flatnonzero(ok) + 1
 
@@ -292,15 +288,8 @@ def first_difference_rows(design: Design) -> np.ndarray:
 def first_differences(values: np.ndarray, design: Design) -> np.ndarray:
     """Within-unit differences over consecutive observed periods (rows sorted)."""
     rows = first_difference_rows(design)
-    return values[rows] - values[rows - 1]
-
-
-def _unit_means(x: np.ndarray, unit: np.ndarray) -> np.ndarray:
-    counts = np.bincount(unit)
-    means = np.column_stack(
-        [np.bincount(unit, weights=x[:, j]) / counts for j in range(x.shape[1])]
-    )
-    return means
+    out: np.ndarray = values[rows] - values[rows - 1]
+    return out
 
 
 def identifiable(design: Design, key: str) -> tuple[list[str], dict[str, str]]:
@@ -308,64 +297,51 @@ def identifiable(design: Design, key: str) -> tuple[list[str], dict[str, str]]:
 
     A regressor is left out when, after the estimator's transformation, nothing
     of it is left (it does not vary within units, or varies only over periods)
-    or it is a linear combination of regressors already kept.
+    or it is a linear combination of regressors already kept. One QR
+    decomposition of the transformed regressors answers both: the j-th diagonal
+    element of R is the norm of what is left of column j after the columns
+    before it.
     """
     names = list(design.x.columns)
     raw = design.x.to_numpy()
     transformed = _transformed(design, key)
-    kept: list[int] = []
-    omitted: dict[str, str] = {}
     raw_scale = np.sqrt(np.mean((raw - raw.mean(axis=0)) ** 2, axis=0)) + 1e-300
+    rms = np.sqrt(np.mean(transformed**2, axis=0))
+    omitted: dict[str, str] = {}
+    candidates: list[int] = []
     for j, name in enumerate(names):
-        col = transformed[:, j]
-        if np.sqrt(np.mean(col**2)) <= 1e-9 * raw_scale[j]:
-            if key in {"fixed_effects", "first_difference"} and _time_invariant(design, j):
-                omitted[name] = "does not change within units, so the unit effects absorb it"
-            elif key == "between":
-                omitted[name] = "its unit means do not vary across units"
-            else:
-                omitted[name] = "varies only over periods, so the period effects absorb it"
-            continue
-        if kept:
-            basis = transformed[:, kept]
-            coef, *_ = np.linalg.lstsq(basis, col, rcond=None)
-            resid = col - basis @ coef
-            if np.sqrt(np.mean(resid**2)) <= 1e-8 * np.sqrt(np.mean(col**2)):
+        if rms[j] > 1e-9 * raw_scale[j]:
+            candidates.append(j)
+        elif key in {"fixed_effects", "first_difference"} and _time_invariant(design, j):
+            omitted[name] = "does not change within units, so the unit effects absorb it"
+        elif key == "between":
+            omitted[name] = "its unit means do not vary across units"
+        else:
+            omitted[name] = "varies only over periods, so the period effects absorb it"
+    kept: list[int] = []
+    if candidates:
+        cols = transformed[:, candidates]
+        r = triangular_factor(cols / np.sqrt((cols**2).sum(axis=0)))
+        for pos, j in enumerate(candidates):
+            if kept and abs(r[pos, pos]) <= 1e-8:
                 others = ", ".join(names[k] for k in kept)
-                omitted[name] = f"is a linear combination of {others} in this estimator"
-                continue
-        kept.append(j)
+                omitted[names[j]] = f"is a linear combination of {others} in this estimator"
+            else:
+                kept.append(j)
+    order = {name: i for i, name in enumerate(names)}
+    omitted = dict(sorted(omitted.items(), key=lambda kv: order[kv[0]]))
     return [names[k] for k in kept], omitted
 
 
 def _time_invariant(design: Design, j: int) -> bool:
-    col = design.x.iloc[:, j]
-    return bool(col.groupby(level=0).nunique().max() <= 1)
+    col = design.x.iloc[:, j].to_numpy()
+    unit = design.unit_codes
+    starts = np.r_[0, np.flatnonzero(unit[1:] != unit[:-1]) + 1]
+    first = np.repeat(col[starts], np.diff(np.r_[starts, len(col)]))
+    return bool(np.all(col == first))
 
 
 # ---------------------------------------------------------------- fitting
-
-
-def _fit_kwargs(key: str, design: Design, estimator: str) -> dict[str, Any]:
-    if key == "classical":
-        return {"cov_type": "unadjusted", "debiased": True}
-    if key == "robust":
-        return {"cov_type": "robust", "debiased": True}
-    if key == "cluster":
-        return {
-            "cov_type": "clustered",
-            "debiased": True,
-            "group_debias": True,
-            "clusters": design.clusters,
-        }
-    if key == "driscoll_kraay":
-        return {
-            "cov_type": "kernel",
-            "kernel": "bartlett",
-            "debiased": True,
-            "bandwidth": dk_bandwidth(design),
-        }
-    raise ValueError(f"unknown inference {key!r}")
 
 
 def cluster_count(design: Design) -> int:
@@ -394,32 +370,140 @@ def dk_bandwidth(design: Design) -> float:
     return float(max(1, int(np.floor(4 * (t / 100) ** (2 / 9)))))
 
 
-def _model(estimator: str, design: Design, terms: list[str]) -> Any:
-    y = design.y
-    x = design.x[terms]
-    const = pd.DataFrame({INTERCEPT: np.ones(design.nobs)}, index=y.index)
+@dataclass(frozen=True)
+class _Fitted:
+    """One estimator's regression, its statistics and how its clusters map to rows."""
+
+    reg: Regression
+    statistics: dict[str, float]
+    units: int
+    nested: bool  # every cluster column constant within units (effects not counted)
+
+
+def _columns(estimator: str, design: Design, terms: list[str]) -> tuple[list[str], np.ndarray]:
+    """The regressors of ``estimator`` before its transformation, with their names."""
+    n = design.nobs
+    x = design.x[terms].to_numpy(dtype=float)
     dummies = design.period_dummies
-    if estimator == "pooled_ols":
-        return PooledOLS(y, pd.concat([const, x, dummies], axis=1))
-    if estimator == "fixed_effects":
-        # Period effects enter as dummies so that, with clusters that nest the units,
-        # the CR1 factor counts them in K while the unit effects are not counted.
-        return PanelOLS(y, pd.concat([x, dummies], axis=1), entity_effects=True)
-    if estimator == "random_effects":
-        return RandomEffects(y, pd.concat([const, x, dummies], axis=1))
-    if estimator == "first_difference":
-        return FirstDifferenceOLS(y, pd.concat([x, dummies], axis=1))
+    d = dummies.to_numpy(dtype=float)
+    const = np.ones((n, 1))
+    period_names = [str(c) for c in dummies.columns]
+    if estimator in {"fixed_effects", "first_difference"}:
+        return [*terms, *period_names], np.column_stack([x, d])
     if estimator == "between":
-        return BetweenOLS(y, pd.concat([const, x], axis=1))
+        return [INTERCEPT, *terms], np.column_stack([const, x])
+    names = [INTERCEPT, *terms, *period_names]
+    cols = [const, x, d]
     if estimator == "correlated_random_effects":
-        varying = [t for t in terms if not _time_invariant(design, list(design.x.columns).index(t))]
-        means = design.x[varying].groupby(level=0).transform("mean")
-        means.columns = [f"{MEAN_PREFIX}{c}" for c in varying]
-        return RandomEffects(y, pd.concat([const, x, dummies, means], axis=1))
-    raise ValueError(f"unknown estimator {estimator!r}")
+        all_names = list(design.x.columns)
+        varying = [t for t in terms if not _time_invariant(design, all_names.index(t))]
+        cols.append(
+            between_means(design.x[varying].to_numpy(dtype=float), design.unit_codes)[
+                design.unit_codes
+            ]
+        )
+        names += [f"{MEAN_PREFIX}{c}" for c in varying]
+    return names, np.column_stack(cols)
 
 
-def _reference(key: str, res: Any, design: Design) -> tuple[str, float]:
+def _centered_r2(ssr: float, y: np.ndarray, centre: bool = True) -> float:
+    dev = y - y.mean() if centre else y
+    tss = float(dev @ dev)
+    return 1.0 - ssr / tss if tss > 0 else float("nan")
+
+
+def _nests_units(design: Design) -> bool:
+    unit = design.unit_codes
+    for col in design.clusters.columns:
+        codes = design.clusters[col].to_numpy()
+        lo = np.full(int(unit.max()) + 1, np.iinfo(np.int64).max)
+        hi = np.full_like(lo, np.iinfo(np.int64).min)
+        np.minimum.at(lo, unit, codes)
+        np.maximum.at(hi, unit, codes)
+        if np.any(lo != hi):
+            return False
+    return True
+
+
+def _fit(estimator: str, design: Design, terms: list[str]) -> _Fitted:
+    """Transform the data as ``estimator`` does and fit it by least squares.
+
+    Fixed effects: within transformation, period effects as dummies (so that
+    with clusters that nest the units the CR1 factor counts them in K while the
+    unit effects are not counted). Random effects: quasi-demeaning with
+    Swamy-Arora components. First differences: consecutive observed periods.
+    Between: OLS on unit means.
+    """
+    names, z = _columns(estimator, design, terms)
+    y = design.y.to_numpy(dtype=float)
+    unit = design.unit_codes
+    period = period_codes(design)
+    n_units = int(unit.max()) + 1
+    rows = np.arange(design.nobs)
+    nested = _nests_units(design)
+    stats_: dict[str, float] = {}
+    if estimator == "pooled_ols":
+        reg = least_squares(y, z, tuple(names), entity=unit, time=period, rows=rows)
+        stats_["r2"] = _centered_r2(reg.ssr, y)
+    elif estimator == "fixed_effects":
+        yw = demean(y, unit)
+        reg = least_squares(
+            yw,
+            demean(z, unit),
+            tuple(names),
+            entity=unit,
+            time=period,
+            rows=rows,
+            effects_df=n_units,
+        )
+        stats_["r2"] = stats_["r2_within"] = _centered_r2(reg.ssr, yw, centre=False)
+        # classical F test that all unit effects are zero: pooled regression with a constant
+        ssr_pooled = least_squares(
+            y - y.mean(), z - z.mean(axis=0), tuple(names), entity=unit, time=period, rows=rows
+        ).ssr
+        df1, df2 = n_units - 1, reg.df_resid
+        f = ((ssr_pooled - reg.ssr) / df1) / (reg.ssr / df2)
+        stats_.update(
+            f_unit_effects=f,
+            f_unit_effects_p=float(f_sf(f, df1, df2)),
+            f_unit_effects_df1=float(df1),
+            f_unit_effects_df2=float(df2),
+        )
+    elif estimator in {"random_effects", "correlated_random_effects"}:
+        comps = random_effects_components(y, z, unit)
+        theta = comps.theta[unit]
+        wy = y - theta * between_means(y, unit)[unit]
+        wz = z - theta[:, None] * between_means(z, unit)[unit]
+        reg = least_squares(wy, wz, tuple(names), entity=unit, time=period, rows=rows)
+        stats_["r2"] = _centered_r2(reg.ssr, wy)
+        stats_["sigma2_unit"] = comps.sigma2_unit
+        stats_["sigma2_idiosyncratic"] = comps.sigma2_idiosyncratic
+        stats_["theta_median"] = float(np.median(comps.theta))
+    elif estimator == "first_difference":
+        fd = first_difference_rows(design)
+        dy = y[fd] - y[fd - 1]
+        reg = least_squares(
+            dy, z[fd] - z[fd - 1], tuple(names), entity=unit[fd], time=period[fd], rows=fd
+        )
+        stats_["r2"] = _centered_r2(reg.ssr, dy, centre=False)
+    elif estimator == "between":
+        ybar = between_means(y, unit)
+        starts = np.r_[0, np.flatnonzero(unit[1:] != unit[:-1]) + 1]
+        reg = least_squares(
+            ybar,
+            between_means(z, unit),
+            tuple(names),
+            entity=np.arange(n_units),
+            time=np.zeros(n_units, dtype=np.intp),
+            rows=starts,
+        )
+        stats_["r2"] = _centered_r2(reg.ssr, ybar)
+    else:
+        raise ValueError(f"unknown estimator {estimator!r}")
+    return _Fitted(reg, stats_, n_units, nested)
+
+
+def _reference(key: str, df_resid: float, design: Design) -> tuple[str, float]:
     """Reference distribution (name, degrees of freedom) for t-ratios.
 
     Common practice, no single source: t(G-1) for clustered errors, t(T-1) for
@@ -431,14 +515,13 @@ def _reference(key: str, res: Any, design: Design) -> tuple[str, float]:
     if key == "driscoll_kraay":
         t = design.periods.nunique()
         return f"t({t - 1})", float(t - 1)
-    df = float(res.df_resid)
-    return f"t({int(df)})", df
+    return f"t({int(df_resid)})", float(df_resid)
 
 
-def _inference(key: str, res: Any, design: Design, level: float) -> InferenceResult:
-    params = res.params
-    cov = res.cov.copy()
-    n = int(res.nobs)
+def _inference(
+    key: str, params: pd.Series, cov: pd.DataFrame, df_resid: float, design: Design, level: float
+) -> InferenceResult:
+    n = design.nobs
     note = ""
     if key == "cluster":
         g = cluster_count(design)
@@ -469,17 +552,17 @@ def _inference(key: str, res: Any, design: Design, level: float) -> InferenceRes
                 "eigenvalues were set to zero, as Cameron, Gelbach & Miller (2011) suggest."
             )
     se = pd.Series(np.sqrt(np.diag(cov)), index=params.index)
-    name, df = _reference(key, res, design)
+    name, df = _reference(key, df_resid, design)
     tstat = params / se
-    p = pd.Series(2 * stats.t.sf(np.abs(tstat), df), index=params.index)
-    crit = stats.t.ppf(0.5 + level / 2, df)
+    p = pd.Series(2 * t_sf(np.abs(tstat), df), index=params.index)
+    crit = t_ppf(0.5 + level / 2, df)
     return InferenceResult(key, se, cov, p, params - crit * se, params + crit * se, name, note)
 
 
-def _bootstrap_inputs(
-    estimator: str, design: Design, model: Any, res: Any
-) -> tuple[np.ndarray, np.ndarray, list[str], np.ndarray] | None:
-    """The regression the wild bootstrap resamples, as the estimator transforms it.
+def _wild_bootstrap(
+    estimator: str, design: Design, reg: Regression, terms: list[str], level: float
+) -> InferenceResult | None:
+    """Restricted wild cluster bootstrap on the regression as the estimator transformed it.
 
     Fixed effects: the within transformation (unit effects nested in the
     clusters, so the restricted fit on demeaned data is valid); first
@@ -488,42 +571,15 @@ def _bootstrap_inputs(
     """
     if estimator == "between":
         return None
-    y = model.dependent.dataframe.to_numpy()[:, 0]
-    x = model.exog.dataframe
-    names = [str(c) for c in x.columns]
-    xv = x.to_numpy()
-    clusters = design.clusters.iloc[:, 0].to_numpy()
-    unit = design.unit_codes
-    if estimator == "fixed_effects":
-        return _demean(y[:, None], unit)[:, 0], _demean(xv, unit), names, clusters
-    if estimator == "first_difference":
-        rows = first_difference_rows(design)
-        return y[rows] - y[rows - 1], xv[rows] - xv[rows - 1], names, clusters[rows]
-    if estimator in {"random_effects", "correlated_random_effects"}:
-        theta = res.theta.iloc[:, 0].reindex(design.unit_codes).to_numpy()
-        counts = np.bincount(unit)
-        ybar = np.bincount(unit, weights=y) / counts
-        xbar = _unit_means(xv, unit)
-        yq = y - theta * ybar[unit]
-        xq = xv - theta[:, None] * xbar[unit]
-        return yq, xq, names, clusters
-    return y, xv, names, clusters
-
-
-def _wild_bootstrap(
-    estimator: str, design: Design, model: Any, res: Any, terms: list[str], level: float
-) -> InferenceResult | None:
-    data = _bootstrap_inputs(estimator, design, model, res)
-    if data is None:
-        return None
-    y, x, names, clusters = data
+    clusters = design.clusters.iloc[:, 0].to_numpy()[reg.rows]
+    names = list(reg.names)
     opts = design.settings.bootstrap
     se, p, lo, hi = {}, {}, {}, {}
     result = None
     for term in terms:
         result = wild_cluster_bootstrap(
-            y,
-            x,
+            reg.y,
+            reg.x,
             clusters,
             term_index=names.index(term),
             term=term,
@@ -558,71 +614,26 @@ def _wild_bootstrap(
     )
 
 
-@dataclass(frozen=True)
-class _Refit:
-    """What `_inference` reads of a fit: its parameters, covariance and sizes."""
-
-    params: pd.Series
-    cov: pd.DataFrame
-    nobs: int
-    df_resid: float
-
-
-_FAST = {"pooled_ols", "fixed_effects", "random_effects", "correlated_random_effects"}
-
-
-def _covariance_from_fit(
-    key: str, estimator: str, design: Design, model: Any, first: Any
-) -> pd.DataFrame | None:
-    """Another covariance for a fitted model, without fitting it again.
-
-    linearmodels recomputes the whole fit (transformation, least squares,
-    R-squared and F statistics) for every covariance type; here its covariance
-    estimators are applied to the transformed data the first fit used, with the
-    degrees-of-freedom rules linearmodels applies (effects counted except under
-    clustering on a variable that nests the units). Returns None where only a
-    refit is safe (two-way clustering, first differences, between).
-    tests/test_estimate_covariance.py checks every fast path against a refit.
-    """
-    if estimator not in _FAST or design.clusters.shape[1] != 1:
-        return None
-    data = _bootstrap_inputs(estimator, design, model, first)
-    if data is None:
-        return None
-    y, x, names, _ = data
-    params = first.params[names].to_numpy()
-    periods = np.sort(design.periods.unique())
-    time_ids = np.searchsorted(periods, design.periods.to_numpy())[:, None]
-    entity_ids = design.unit_codes[:, None]
-    extra_df = 0
-    if estimator == "fixed_effects":
-        nested = bool(
-            key == "cluster"
-            and design.clusters.iloc[:, 0].groupby(design.unit_codes).nunique().max() == 1
-        )
-        extra_df = 0 if nested else len(design.unit_names) or int(design.units.nunique())
-    args = (y[:, None], x, params[:, None], entity_ids, time_ids)
+def _covariance(key: str, estimator: str, fitted: _Fitted, design: Design) -> np.ndarray | None:
+    """The covariance of one inference, or None where it does not apply."""
+    reg = fitted.reg
+    if key == "classical":
+        return covariance(reg, "classical")
     if key == "robust":
-        est: Any = HeteroskedasticCovariance(*args, debiased=True, extra_df=extra_df)
-    elif key == "cluster":
-        est = ClusteredCovariance(
-            *args,
-            debiased=True,
-            extra_df=extra_df,
-            clusters=design.clusters.iloc[:, 0].to_numpy()[:, None],
-            group_debias=True,
-        )
-    elif key == "driscoll_kraay":
-        est = DriscollKraay(
-            *args,
-            debiased=True,
-            extra_df=extra_df,
-            kernel="bartlett",
-            bandwidth=dk_bandwidth(design),
-        )
-    else:
-        return None
-    return pd.DataFrame(est.cov, index=names, columns=names)
+        return covariance(reg, "robust")
+    if key == "driscoll_kraay":
+        if estimator == "between":
+            return None  # unit means have no time dimension left
+        return covariance(reg, "driscoll_kraay", bandwidth=dk_bandwidth(design))
+    if key == "cluster":
+        all_clusters = design.clusters.to_numpy()
+        clusters = all_clusters[reg.rows]
+        if estimator == "between" and not fitted.nested:
+            return None  # a unit's mean cannot belong to two clusters
+        if estimator == "first_difference" and np.any(clusters != all_clusters[reg.rows - 1]):
+            return None  # a difference whose two rows lie in different clusters
+        return covariance(reg, "cluster", clusters=clusters, count_effects=not fitted.nested)
+    raise ValueError(f"unknown inference {key!r}")
 
 
 def _fit_one(
@@ -633,27 +644,21 @@ def _fit_one(
     inference: tuple[str, ...],
     level: float,
 ) -> ModelResult:
-    model = _model(estimator, design, terms)
+    fitted = _fit(estimator, design, terms)
+    reg = fitted.reg
+    names = list(reg.names)
+    params = pd.Series(reg.params, index=names)
     results: dict[str, InferenceResult] = {}
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        first = model.fit(**_fit_kwargs("classical", design, estimator))
     for key in inference:
-        if key == "wild_bootstrap" or (key == "driscoll_kraay" and estimator == "between"):
-            continue  # the bootstrap follows; unit means have no time dimension left
-        if key == "classical":
-            res: Any = first
-        else:
-            cov = _covariance_from_fit(key, estimator, design, model, first)
-            if cov is not None:
-                res = _Refit(first.params, cov, int(first.nobs), float(first.df_resid))
-            else:
-                with warnings.catch_warnings():
-                    warnings.simplefilter("ignore")
-                    res = model.fit(**_fit_kwargs(key, design, estimator))
-        results[key] = _inference(key, res, design, level)
+        if key == "wild_bootstrap":
+            continue  # the bootstrap follows
+        cov = _covariance(key, estimator, fitted, design)
+        if cov is None:
+            continue
+        frame = pd.DataFrame(cov, index=names, columns=names)
+        results[key] = _inference(key, params, frame, float(reg.df_resid), design, level)
     if "wild_bootstrap" in inference:
-        boot = _wild_bootstrap(estimator, design, model, first, terms, level)
+        boot = _wild_bootstrap(estimator, design, reg, terms, level)
         if boot is not None:
             results["wild_bootstrap"] = boot
     few = cluster_count(design) < FEW_CLUSTERS
@@ -663,31 +668,17 @@ def _fit_one(
         headline = "cluster"
     else:
         headline = next(iter(results))
-    statistics: dict[str, float] = {"r2": float(first.rsquared)}
-    if estimator in {"random_effects", "correlated_random_effects"}:
-        vd = first.variance_decomposition
-        statistics["sigma2_unit"] = float(vd["Effects"])
-        statistics["sigma2_idiosyncratic"] = float(vd["Residual"])
-        statistics["theta_median"] = float(np.median(np.asarray(first.theta)))
-    if estimator == "fixed_effects":
-        statistics["r2_within"] = float(first.rsquared_within)
-        pooled = first.f_pooled  # classical F test that all unit effects are zero
-        statistics["f_unit_effects"] = float(pooled.stat)
-        statistics["f_unit_effects_p"] = float(pooled.pval)
-        statistics["f_unit_effects_df1"] = float(pooled.df)
-        statistics["f_unit_effects_df2"] = float(pooled.df_denom)
-    units = first.entity_info["total"] if estimator != "between" else len(first.params)
     return ModelResult(
         key=estimator,
-        nobs=int(first.nobs),
-        units=int(units) if estimator != "between" else int(design.units.nunique()),
+        nobs=reg.nobs,
+        units=fitted.units,
         periods=int(design.periods.nunique()),
-        params=first.params,
+        params=params,
         terms=tuple(terms),
         omitted=omitted,
         inference=results,
         headline_inference=headline,
-        statistics=statistics,
+        statistics=fitted.statistics,
     )
 
 
@@ -753,5 +744,16 @@ def estimate_all(
                 )
             )
             continue
-        models[estimator] = _fit_one(estimator, design, terms, omitted, inference, s.level)
+        try:
+            models[estimator] = _fit_one(estimator, design, terms, omitted, inference, s.level)
+        except np.linalg.LinAlgError as exc:
+            findings.append(
+                Finding(
+                    "estimator_skipped",
+                    "warning",
+                    f"{ESTIMATOR_LABELS[estimator]} could not be fitted ({exc}); the other "
+                    "estimators are reported.",
+                    {"estimator": estimator},
+                )
+            )
     return models, findings

@@ -215,7 +215,8 @@ def _residuals(
     panel: pd.DataFrame, settings: AnalysisSettings, models: Mapping[str, ModelResult]
 ) -> str | None:
     """The residual figure of the fixed-effects model (within transformation)."""
-    from .estimate import _demean, make_design
+    from .estimate import make_design
+    from .fit import demean
     from .report import residual_figure
 
     fe = models.get("fixed_effects")
@@ -224,8 +225,8 @@ def _residuals(
     design, _ = make_design(panel, settings)
     x = pd.concat([design.x, design.period_dummies], axis=1)[list(fe.params.index)]
     unit = design.unit_codes
-    xw = _demean(x.to_numpy(), unit)
-    yw = _demean(design.y.to_numpy()[:, None], unit)[:, 0]
+    xw = demean(x.to_numpy(), unit)
+    yw = demean(design.y.to_numpy()[:, None], unit)[:, 0]
     fitted = xw @ fe.params.to_numpy()
     return residual_figure(fitted, yw - fitted)
 
