@@ -429,11 +429,16 @@ def test_leave_one_cluster_out_equals_refits(groups: int | None) -> None:
     assert result.effect["max_change"] == pytest.approx(shift[np.argmax(np.abs(shift))])
 
 
-def test_leave_one_cluster_out_marks_a_cluster_it_cannot_leave_out() -> None:
-    """A column with variation in one cluster only (a period seen only there)."""
+@pytest.mark.parametrize("columns", [3, 7], ids=["K<size", "K>=size"])
+def test_leave_one_cluster_out_marks_a_cluster_it_cannot_leave_out(columns: int) -> None:
+    """A column with variation in one cluster only (a period seen only there).
+
+    Clusters of 5 rows: with 3 columns the K x K systems are solved, with 7 the
+    deletion formula's 5 x 5 systems; both must equal the refits (numpy lstsq).
+    """
     rng = np.random.default_rng(0)
     clusters = np.repeat(np.arange(8), 5)
-    X = rng.normal(size=(40, 3))
+    X = rng.normal(size=(40, columns))
     X[5:, 2] = 0.0
     y = rng.normal(size=40)
     loo = leave_one_cluster_out(y, X, clusters, 8)

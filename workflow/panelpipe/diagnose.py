@@ -1433,32 +1433,50 @@ def leave_one_cluster_out(
     sizes = np.diff(np.r_[starts, len(codes)])
     full = X.T @ X
     full_rhs = X.T @ y
-    floor = 1e-10 * np.diag(full)
     out = np.full((n_clusters, k), np.nan)
-    # Clusters of equal size are stacked (m x size x K) so that their X_g'X_g come from
-    # one batched product, in chunks of bounded memory.
+    # Without cluster g a column may lose all its variation (a period observed only
+    # there); those rows stay NaN. Other singular cases are caught one by one.
+    kept_diag = np.diag(full)[None, :] - group_sums(X**2, codes, n_clusters)
+    leavable = (kept_diag > 1e-10 * np.diag(full)[None, :]).all(axis=1)
+    try:
+        inverse = np.linalg.inv(full)
+    except np.linalg.LinAlgError:
+        return out
+    beta = inverse @ full_rhs
+    resid = y - X @ beta
+    xa = X @ inverse
+    # Clusters of equal size are stacked (m x size x K) and solved together, in chunks
+    # of bounded memory. A cluster with at most K rows uses the deletion formula
+    # beta - (X'X)^{-1} X_g' (I - H_g)^{-1} e_g (size x size systems); a larger one
+    # solves (A - A_g) beta_g = b - b_g (K x K systems).
     budget = 4_000_000
     for size in np.unique(sizes[sizes > 0]):
-        same = np.flatnonzero(sizes == size)
-        per_chunk = max(1, budget // (int(size) * k + k * k))
+        same = np.flatnonzero((sizes == size) & leavable)
+        per_chunk = max(1, budget // (int(size) * (k + int(size)) + k * k))
         for first in range(0, len(same), per_chunk):
             chunk = same[first : first + per_chunk]
             rows = starts[chunk][:, None] + np.arange(size)[None, :]
-            xb, yb = X[rows], y[rows]
-            lhs = full[None] - np.matmul(xb.transpose(0, 2, 1), xb)
-            rhs = full_rhs[None] - np.einsum("msk,ms->mk", xb, yb)
-            # Without cluster g a column may lose all its variation (a period observed
-            # only there); those rows stay NaN. Other singular cases are caught one by one.
-            ok = (np.diagonal(lhs, axis1=1, axis2=2) > floor[None, :]).all(axis=1)
-            good = chunk[ok]
+            xb = X[rows]
+            if size <= k:
+                xab = xa[rows]
+                lhs = np.eye(int(size))[None] - np.matmul(xb, xab.transpose(0, 2, 1))
+                rhs = resid[rows]
+            else:
+                lhs = full[None] - np.matmul(xb.transpose(0, 2, 1), xb)
+                rhs = full_rhs[None] - np.einsum("msk,ms->mk", xb, y[rows])
             try:
-                out[good] = np.linalg.solve(lhs[ok], rhs[ok][..., None])[..., 0]
+                solved = np.linalg.solve(lhs, rhs[..., None])[..., 0]
             except np.linalg.LinAlgError:
-                for g, a, b in zip(good, lhs[ok], rhs[ok], strict=True):
+                solved = np.full(rhs.shape, np.nan)
+                for i, (a, b) in enumerate(zip(lhs, rhs, strict=True)):
                     try:
-                        out[g] = np.linalg.solve(a, b)
+                        solved[i] = np.linalg.solve(a, b)
                     except np.linalg.LinAlgError:
                         continue
+            if size <= k:
+                out[chunk] = beta[None, :] - np.einsum("msk,ms->mk", xab, solved)
+            else:
+                out[chunk] = solved
     return out
 
 

@@ -40,7 +40,9 @@ __all__ = [
     "InferenceResult",
     "ModelResult",
     "estimate_all",
+    "estimate_one",
     "make_design",
+    "planned_inference",
 ]
 
 INTERCEPT = "_intercept"
@@ -682,6 +684,65 @@ def _fit_one(
     )
 
 
+def planned_inference(design: Design) -> tuple[tuple[str, ...], list[Finding]]:
+    """The configured inference, with the wild bootstrap added below 30 clusters."""
+    inference = design.settings.inference
+    g = cluster_count(design)
+    if g < FEW_CLUSTERS and "cluster" in inference and "wild_bootstrap" not in inference:
+        return (*inference, "wild_bootstrap"), [
+            Finding(
+                "wild_bootstrap_added",
+                "info",
+                f"Only {g} clusters: the wild cluster bootstrap was added beside the clustered "
+                f"standard errors and is the headline inference (below about {FEW_CLUSTERS} "
+                "clusters the cluster-robust t-test rejects too often).",
+            )
+        ]
+    return inference, []
+
+
+def estimate_one(
+    design: Design, estimator: str, inference: tuple[str, ...]
+) -> tuple[ModelResult | None, list[Finding]]:
+    """Fit one estimator under ``inference``; None (with a finding) when it cannot be."""
+    findings: list[Finding] = []
+    terms, omitted = identifiable(design, estimator)
+    for name, reason in omitted.items():
+        findings.append(
+            Finding(
+                "regressor_not_identified",
+                "info",
+                f"{ESTIMATOR_LABELS[estimator]}: {name!r} {reason}; it is left out of this "
+                "estimator only.",
+                {"estimator": estimator, "column": name},
+            )
+        )
+    if not terms:
+        findings.append(
+            Finding(
+                "estimator_skipped",
+                "warning",
+                f"{ESTIMATOR_LABELS[estimator]} cannot identify any regressor; not fitted.",
+                {"estimator": estimator},
+            )
+        )
+        return None, findings
+    try:
+        model = _fit_one(estimator, design, terms, omitted, inference, design.settings.level)
+    except np.linalg.LinAlgError as exc:
+        findings.append(
+            Finding(
+                "estimator_skipped",
+                "warning",
+                f"{ESTIMATOR_LABELS[estimator]} could not be fitted ({exc}); the other "
+                "estimators are reported.",
+                {"estimator": estimator},
+            )
+        )
+        return None, findings
+    return model, findings
+
+
 def estimate_all(
     design: Design,
     *,
@@ -704,56 +765,13 @@ def estimate_all(
     (Mundlak 1978; Wooldridge 2010 §10.7.3). Cluster-robust covariance: Liang &
     Zeger (1986), Arellano (1987), CR1 factor as in Cameron & Miller (2015).
     """
-    s = design.settings
     models: dict[str, ModelResult] = {}
-    findings: list[Finding] = []
-    inference = s.inference
-    g = cluster_count(design)
-    if g < FEW_CLUSTERS and "cluster" in inference and "wild_bootstrap" not in inference:
-        inference = (*inference, "wild_bootstrap")
-        findings.append(
-            Finding(
-                "wild_bootstrap_added",
-                "info",
-                f"Only {g} clusters: the wild cluster bootstrap was added beside the clustered "
-                f"standard errors and is the headline inference (below about {FEW_CLUSTERS} "
-                "clusters the cluster-robust t-test rejects too often).",
-            )
-        )
-    for estimator in s.estimators:
+    inference, findings = planned_inference(design)
+    for estimator in design.settings.estimators:
         if progress:
             progress(estimator)
-        terms, omitted = identifiable(design, estimator)
-        for name, reason in omitted.items():
-            findings.append(
-                Finding(
-                    "regressor_not_identified",
-                    "info",
-                    f"{ESTIMATOR_LABELS[estimator]}: {name!r} {reason}; it is left out of this "
-                    "estimator only.",
-                    {"estimator": estimator, "column": name},
-                )
-            )
-        if not terms:
-            findings.append(
-                Finding(
-                    "estimator_skipped",
-                    "warning",
-                    f"{ESTIMATOR_LABELS[estimator]} cannot identify any regressor; not fitted.",
-                    {"estimator": estimator},
-                )
-            )
-            continue
-        try:
-            models[estimator] = _fit_one(estimator, design, terms, omitted, inference, s.level)
-        except np.linalg.LinAlgError as exc:
-            findings.append(
-                Finding(
-                    "estimator_skipped",
-                    "warning",
-                    f"{ESTIMATOR_LABELS[estimator]} could not be fitted ({exc}); the other "
-                    "estimators are reported.",
-                    {"estimator": estimator},
-                )
-            )
+        model, more = estimate_one(design, estimator, inference)
+        findings += more
+        if model is not None:
+            models[estimator] = model
     return models, findings

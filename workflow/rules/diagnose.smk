@@ -1,7 +1,7 @@
+# The audit fits the fixed-effects model itself, so it runs beside estimate, not after it.
 rule diagnose:
     input:
         panel=run_path("work/panel.parquet"),
-        models=run_path("work/models.json"),
     output:
         diagnostics=run_path("work/diagnostics.json"),
     log:

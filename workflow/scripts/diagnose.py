@@ -4,6 +4,5 @@ with script_guard(snakemake.log[0]):
     diagnose_step(
         snakemake.params.settings,
         snakemake.input.panel,
-        snakemake.input.models,
         snakemake.output.diagnostics,
     )
