@@ -36,6 +36,7 @@ __all__ = [
     "INFERENCE_LABELS",
     "INTERCEPT",
     "MEAN_PREFIX",
+    "PERIOD_PREFIX",
     "Design",
     "InferenceResult",
     "ModelResult",
@@ -64,7 +65,7 @@ INFERENCE_LABELS = {
     "wild_bootstrap": "wild cluster bootstrap",
 }
 
-_PERIOD_PREFIX = "_period_"
+PERIOD_PREFIX = "_period_"
 MEAN_PREFIX = "_unit_mean_"
 
 
@@ -227,7 +228,7 @@ def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design
     if s.period_effects and len(periods) > 1:
         codes = pd.Categorical(data[s.period].to_numpy(), categories=periods)
         dummies = pd.get_dummies(codes, drop_first=True, dtype=float)
-        dummies.columns = [f"{_PERIOD_PREFIX}{p}" for p in periods[1:]]
+        dummies.columns = [f"{PERIOD_PREFIX}{p}" for p in periods[1:]]
         dummies.index = index
     else:
         dummies = pd.DataFrame(index=index)

@@ -44,18 +44,18 @@ def analysis_sources(wildcards):
     return [ancient(str(p)) for p in paths]
 
 
-def panel_mem_mb(wildcards, input):
-    """Memory a statistics step needs: about 40 times the panel's Parquet size.
+def memory_mb(factor):
+    """mem_mb of a step: ``factor`` times the size of its input files, at least 1000.
 
-    Measured with python -m panelpipe.bench: at 1,000,000 rows x 10 regressors the
-    panel file is about 92 MB and estimate, compare and diagnose peak at 1.1-3.5 GB.
+    Factors from the peaks measured with python -m panelpipe.bench at 1,000,000 rows
+    x 10 regressors (panel Parquet about 92 MB): diagnose 1.8 GB, estimate, compare
+    and report 1.1 GB, validate 0.7 GB, ingest 0.5 GB, with some room above each.
     """
-    return max(1000, int(40 * input.size_mb))
 
+    def mem_mb(wildcards, input):
+        return max(1000, int(factor * input.size_mb))
 
-def light_mem_mb(wildcards, input):
-    """Memory of ingest, validate and report: a few times the data read."""
-    return max(1000, int(8 * input.size_mb))
+    return mem_mb
 
 
 def analysis_config(wildcards):

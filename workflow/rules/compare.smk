@@ -10,7 +10,7 @@ rule compare:
         run_path("benchmarks/compare.tsv")
     threads: 1
     resources:
-        mem_mb=panel_mem_mb,
+        mem_mb=memory_mb(15),
     params:
         settings=analysis_settings_of,
     script:

@@ -10,7 +10,7 @@ rule diagnose:
         run_path("benchmarks/diagnose.tsv")
     threads: 1
     resources:
-        mem_mb=panel_mem_mb,
+        mem_mb=memory_mb(22),
     params:
         settings=analysis_settings_of,
     script:

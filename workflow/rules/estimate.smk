@@ -9,7 +9,7 @@ rule estimate:
         run_path("benchmarks/estimate.tsv")
     threads: 1
     resources:
-        mem_mb=panel_mem_mb,
+        mem_mb=memory_mb(15),
     params:
         settings=analysis_settings_of,
     script:

@@ -10,7 +10,7 @@ rule ingest:
         run_path("benchmarks/ingest.tsv")
     threads: 1
     resources:
-        mem_mb=light_mem_mb,
+        mem_mb=memory_mb(6),
     params:
         settings=analysis_settings_of,
     script:

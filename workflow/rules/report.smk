@@ -19,7 +19,7 @@ rule report:
         run_path("benchmarks/report.tsv")
     threads: 1
     resources:
-        mem_mb=light_mem_mb,
+        mem_mb=memory_mb(14),
     params:
         settings=analysis_settings_of,
         config=analysis_config,

@@ -10,7 +10,7 @@ rule validate:
         run_path("benchmarks/validate.tsv")
     threads: 1
     resources:
-        mem_mb=light_mem_mb,
+        mem_mb=memory_mb(9),
     params:
         settings=analysis_settings_of,
     script:
