@@ -62,6 +62,7 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 import scipy.linalg
+import scipy.linalg.lapack
 
 from .bootstrap import wild_cluster_bootstrap
 from .distributions import chi2_sf, f_sf, norm_sf, t_sf
@@ -293,19 +294,23 @@ def _cluster_fit(y: FloatArray, X: FloatArray, clusters: IntArray) -> _Fit:
 
 
 def _independent(base: FloatArray, extra: FloatArray) -> IntArray:
-    """Columns of ``extra`` that are linearly independent of ``base`` and each other."""
+    """Columns of ``extra`` that are linearly independent of ``base`` and each other.
+
+    What is left of ``extra`` after least squares on ``base`` is formed
+    explicitly; a pivoted Cholesky decomposition of its cross-products (LAPACK
+    dpstrf) keeps the columns whose remainder exceeds 1e-6 of the largest
+    column norm. The remainder of an exactly collinear column is rounding
+    noise, far below that.
+    """
     if extra.shape[1] == 0:
         return np.zeros(0, dtype=np.intp)
     scale = float(np.sqrt((extra**2).sum(axis=0)).max())
     if scale == 0.0:
         return np.zeros(0, dtype=np.intp)
-    rest = extra
-    if base.shape[1]:
-        rest = extra - base @ ls_coefficients(base, extra)
-    r, piv = scipy.linalg.qr(rest, mode="r", pivoting=True)
-    diag = np.abs(np.diag(r))
-    rank = int(np.count_nonzero(diag > 1e-8 * scale))
-    return np.sort(piv[:rank]).astype(np.intp)
+    rest = extra - base @ ls_coefficients(base, extra) if base.shape[1] else extra
+    gram = rest.T @ rest
+    _, piv, rank, _ = scipy.linalg.lapack.dpstrf((gram + gram.T) / 2, tol=(1e-6 * scale) ** 2)
+    return np.sort(piv[:rank] - 1).astype(np.intp)
 
 
 def _ssr(y: FloatArray, X: FloatArray) -> tuple[FloatArray, FloatArray]:
