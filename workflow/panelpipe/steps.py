@@ -31,8 +31,8 @@ if TYPE_CHECKING:
     from .compare import TestResult
     from .estimate import ModelResult
 
-# Each workflow step runs in its own process: the heavy stage modules (linearmodels,
-# scipy.stats, matplotlib) are imported inside the steps that need them, so that
+# Each workflow step runs in its own process: the heavy stage modules (the numerical
+# core, scipy, matplotlib) are imported inside the steps that need them, so that
 # ingest and validation start in a fraction of the time.
 
 __all__ = [
