@@ -429,6 +429,14 @@ def test_leave_one_cluster_out_equals_refits(groups: int | None) -> None:
     assert result.effect["max_change"] == pytest.approx(shift[np.argmax(np.abs(shift))])
 
 
+def test_clusters_are_named_by_their_own_values() -> None:
+    """Clustering by a column other than the unit: labels are that column's values."""
+    panel = simulate(7, n_units=20, n_periods=6, groups=10)
+    design, models = fitted(panel, settings(cluster_by=("group",)))
+    effect = run_audit(design, models)["influential_clusters"].effect
+    assert set(effect["leave_one_out"]) == {f"g{i:02d}" for i in range(10)}
+
+
 @pytest.mark.parametrize("columns", [3, 7], ids=["K<size", "K>=size"])
 def test_leave_one_cluster_out_marks_a_cluster_it_cannot_leave_out(columns: int) -> None:
     """A column with variation in one cluster only (a period seen only there).

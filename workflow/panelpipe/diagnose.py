@@ -337,16 +337,10 @@ class _Index:
     def of(cls, design: Design) -> _Index:
         unit, units = pd.factorize(design.units)
         period = pd.factorize(design.periods, sort=True)[0].astype(np.intp)
-        cluster, _ = pd.factorize(design.clusters.iloc[:, 0].to_numpy())
+        col = design.clusters.columns[0]
+        cluster, codes = pd.factorize(design.clusters[col].to_numpy())
         cluster = cluster.astype(np.intp)
-        # The design keeps cluster codes only: name a cluster by its unit when
-        # clustering by unit, otherwise by the first unit it holds.
-        first_unit = units[unit[np.unique(cluster, return_index=True)[1]]]
-        if design.clusters.columns[0] == design.settings.unit:
-            labels = pd.Index([str(u) for u in first_unit])
-        else:
-            col = design.clusters.columns[0]
-            labels = pd.Index([f"{col} holding unit {u}" for u in first_unit])
+        labels = pd.Index([str(design.cluster_names[col][c]) for c in codes])
         return cls(
             unit.astype(np.intp),
             period,

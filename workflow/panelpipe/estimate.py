@@ -79,6 +79,8 @@ class Design:
     clusters: pd.DataFrame
     settings: AnalysisSettings
     unit_names: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=object))
+    cluster_names: Mapping[str, np.ndarray] = field(default_factory=dict)
+    """Per cluster column, the cluster's value (text) for each integer code."""
 
     @property
     def nobs(self) -> int:
@@ -232,12 +234,12 @@ def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design
         dummies.index = index
     else:
         dummies = pd.DataFrame(index=index)
-    clusters = pd.DataFrame(
-        {c: pd.factorize(data[c].astype(str).to_numpy())[0] for c in s.cluster_by}, index=index
-    )
+    factorized = {c: pd.factorize(data[c].astype(str).to_numpy()) for c in s.cluster_by}
+    clusters = pd.DataFrame({c: codes for c, (codes, _) in factorized.items()}, index=index)
+    cluster_names = {c: np.asarray(values, dtype=object) for c, (_, values) in factorized.items()}
     findings: list[Finding] = []
     names = np.asarray(unit_names, dtype=object)
-    return Design(y, x, dummies, clusters, s, names), findings
+    return Design(y, x, dummies, clusters, s, names, cluster_names), findings
 
 
 # ---------------------------------------------------------------- identification
