@@ -22,9 +22,9 @@ from .distributions import f_sf, t_ppf, t_sf
 from .findings import Finding
 from .fit import (
     Regression,
-    between_means,
     covariance,
     demean,
+    group_means,
     least_squares,
     random_effects_components,
     triangular_factor,
@@ -258,7 +258,7 @@ def _transformed(design: Design, key: str) -> np.ndarray:
     unit = design.unit_codes
     two_way = design.settings.period_effects
     if key == "between":
-        return demean(between_means(x, unit), np.zeros(int(unit.max()) + 1, dtype=np.intp))
+        return demean(group_means(x, unit), np.zeros(int(unit.max()) + 1, dtype=np.intp))
     if key == "first_difference":
         diff = first_differences(x, design)
         return demean(diff, np.zeros(len(diff), dtype=np.intp))
@@ -403,7 +403,7 @@ def _columns(estimator: str, design: Design, terms: list[str]) -> tuple[list[str
         all_names = list(design.x.columns)
         varying = [t for t in terms if not _time_invariant(design, all_names.index(t))]
         cols.append(
-            between_means(design.x[varying].to_numpy(dtype=float), design.unit_codes)[
+            group_means(design.x[varying].to_numpy(dtype=float), design.unit_codes)[
                 design.unit_codes
             ]
         )
@@ -448,7 +448,7 @@ def _fit(estimator: str, design: Design, terms: list[str]) -> _Fitted:
     nested = _nests_units(design)
     stats_: dict[str, float] = {}
     if estimator == "pooled_ols":
-        reg = least_squares(y, z, tuple(names), entity=unit, time=period, rows=rows)
+        reg = least_squares(y, z, tuple(names), time=period, rows=rows)
         stats_["r2"] = _centered_r2(reg.ssr, y)
     elif estimator == "fixed_effects":
         yw = demean(y, unit)
@@ -456,7 +456,6 @@ def _fit(estimator: str, design: Design, terms: list[str]) -> _Fitted:
             yw,
             demean(z, unit),
             tuple(names),
-            entity=unit,
             time=period,
             rows=rows,
             effects_df=n_units,
@@ -464,7 +463,7 @@ def _fit(estimator: str, design: Design, terms: list[str]) -> _Fitted:
         stats_["r2"] = stats_["r2_within"] = _centered_r2(reg.ssr, yw, centre=False)
         # classical F test that all unit effects are zero: pooled regression with a constant
         ssr_pooled = least_squares(
-            y - y.mean(), z - z.mean(axis=0), tuple(names), entity=unit, time=period, rows=rows
+            y - y.mean(), z - z.mean(axis=0), tuple(names), time=period, rows=rows
         ).ssr
         df1, df2 = n_units - 1, reg.df_resid
         f = ((ssr_pooled - reg.ssr) / df1) / (reg.ssr / df2)
@@ -477,9 +476,9 @@ def _fit(estimator: str, design: Design, terms: list[str]) -> _Fitted:
     elif estimator in {"random_effects", "correlated_random_effects"}:
         comps = random_effects_components(y, z, unit)
         theta = comps.theta[unit]
-        wy = y - theta * between_means(y, unit)[unit]
-        wz = z - theta[:, None] * between_means(z, unit)[unit]
-        reg = least_squares(wy, wz, tuple(names), entity=unit, time=period, rows=rows)
+        wy = y - theta * group_means(y, unit)[unit]
+        wz = z - theta[:, None] * group_means(z, unit)[unit]
+        reg = least_squares(wy, wz, tuple(names), time=period, rows=rows)
         stats_["r2"] = _centered_r2(reg.ssr, wy)
         stats_["sigma2_unit"] = comps.sigma2_unit
         stats_["sigma2_idiosyncratic"] = comps.sigma2_idiosyncratic
@@ -487,18 +486,15 @@ def _fit(estimator: str, design: Design, terms: list[str]) -> _Fitted:
     elif estimator == "first_difference":
         fd = first_difference_rows(design)
         dy = y[fd] - y[fd - 1]
-        reg = least_squares(
-            dy, z[fd] - z[fd - 1], tuple(names), entity=unit[fd], time=period[fd], rows=fd
-        )
+        reg = least_squares(dy, z[fd] - z[fd - 1], tuple(names), time=period[fd], rows=fd)
         stats_["r2"] = _centered_r2(reg.ssr, dy, centre=False)
     elif estimator == "between":
-        ybar = between_means(y, unit)
+        ybar = group_means(y, unit)
         starts = np.r_[0, np.flatnonzero(unit[1:] != unit[:-1]) + 1]
         reg = least_squares(
             ybar,
-            between_means(z, unit),
+            group_means(z, unit),
             tuple(names),
-            entity=np.arange(n_units),
             time=np.zeros(n_units, dtype=np.intp),
             rows=starts,
         )

@@ -27,9 +27,9 @@ import scipy.sparse
 
 __all__ = [
     "Regression",
-    "between_means",
     "covariance",
     "demean",
+    "group_means",
     "group_sums",
     "least_squares",
     "ls_coefficients",
@@ -77,17 +77,12 @@ def demean(values: FloatArray, codes: IntArray) -> FloatArray:
     return values - group_means(values, codes)[codes]
 
 
-def between_means(values: FloatArray, codes: IntArray) -> FloatArray:
-    """Means within each code, one row per code (the between transformation)."""
-    return group_means(values, codes)
-
-
 @dataclass(frozen=True)
 class Regression:
     """A least-squares fit on transformed panel data, ready for any covariance.
 
-    ``y`` and ``x`` are the data as the estimator transformed them; ``entity``,
-    ``time`` and ``rows`` give each transformed row's unit code, period code and
+    ``y`` and ``x`` are the data as the estimator transformed them; ``time`` and
+    ``rows`` give each transformed row's period code (for Driscoll-Kraay) and
     position among the estimation sample's rows (for clusters). ``effects_df``
     counts the effects the transformation removed (the unit effects under fixed
     effects), which the degrees of freedom include unless clusters nest them.
@@ -98,7 +93,6 @@ class Regression:
     y: FloatArray
     x: FloatArray
     r: FloatArray = field(repr=False)
-    entity: IntArray = field(repr=False)
     time: IntArray = field(repr=False)
     rows: IntArray = field(repr=False)
     effects_df: int = 0
@@ -163,7 +157,6 @@ def least_squares(
     x: FloatArray,
     names: tuple[str, ...],
     *,
-    entity: IntArray,
     time: IntArray,
     rows: IntArray,
     effects_df: int = 0,
@@ -197,9 +190,7 @@ def least_squares(
     scaled = scipy.linalg.cho_solve((factor, False), (x.T @ y) / norms)
     resid = y - x @ (scaled / norms)
     scaled = scaled + scipy.linalg.cho_solve((factor, False), (x.T @ resid) / norms)
-    return Regression(
-        names, scaled / norms, y, x, factor * norms[None, :], entity, time, rows, effects_df
-    )
+    return Regression(names, scaled / norms, y, x, factor * norms[None, :], time, rows, effects_df)
 
 
 def _cluster_meat(scores: FloatArray, codes: IntArray) -> FloatArray:
