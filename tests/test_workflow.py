@@ -71,6 +71,10 @@ def test_demo_runs_end_to_end_and_a_rerun_does_no_work(workdir: Path) -> None:
     assert fe["headline_inference"] == "cluster"
     assert {"statistic", "df", "p_value"} <= set(results["tests"]["hausman"])
     assert any(f["code"] == "regressor_not_identified" for f in results["validation"]["findings"])
+    # The audit fits the fixed-effects model in its own step: the same numbers as estimate's.
+    loco = results["diagnostics"]["influential_clusters"]["effect"]
+    assert loco["estimate"] == pytest.approx(fe["params"]["subsidy_rate"], rel=1e-10)
+    assert loco["cr1_se"] == pytest.approx(fe["std_errors"]["cluster"]["subsidy_rate"], rel=1e-10)
 
     table = pd.read_csv(run_dir / "estimates.csv")
     assert list(table.columns) == [
