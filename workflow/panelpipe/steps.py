@@ -192,9 +192,9 @@ def _load_tests(path: str) -> dict[str, TestResult]:
 
 def _versions() -> dict[str, str]:
     out = {"python": platform.python_version(), "panelpipe": __version__}
+    # The libraries that compute the run's numbers and files (linearmodels is the
+    # reference the numerical core is tested against, not used by a run).
     for pkg in (
-        "linearmodels",
-        "statsmodels",
         "pandas",
         "numpy",
         "scipy",
