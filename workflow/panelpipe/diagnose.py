@@ -396,7 +396,8 @@ class _Within:
 
     @property
     def w(self) -> FloatArray:
-        return np.hstack([self.x, self.d])
+        """The fit's regressors, [x, d] (the array the fit holds, not a copy)."""
+        return self.fit.X
 
 
 @dataclass(frozen=True)
