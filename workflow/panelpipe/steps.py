@@ -77,12 +77,12 @@ def validate_step(
     settings: AnalysisSettings, raw_in: str, panel_out: str, validation_out: str
 ) -> None:
     """Validate the stacked panel; on errors write the findings and stop."""
-    from .report import render_validation_page
-
     raw = pd.read_parquet(raw_in)
     result = validate_panel(raw, settings)
     doc = {"analysis": settings.name, **result.to_dict()}
     if result.status == "fail":
+        from .report import render_validation_page  # 1.7 s of imports, only on failure
+
         # Kept beside the run (not declared outputs, which a failed job loses) so that
         # the failed attempt can be read; report.html is never written.
         run_dir = Path(validation_out).parent.parent
