@@ -43,6 +43,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from _support import panel_settings
 from panelpipe.compare import run_comparisons
 from panelpipe.config import AnalysisSettings
 from panelpipe.estimate import estimate_all, make_design
@@ -60,19 +61,12 @@ def _settings(
     inference: tuple[str, ...],
     bootstrap: dict[str, Any] | None = None,
 ) -> AnalysisSettings:
-    return AnalysisSettings(
+    return panel_settings(
         name="montecarlo",
-        sources=("simulated.csv",),
-        unit="unit",
-        period="period",
-        outcome="y",
         regressors=("x",),
         period_effects=False,
-        cluster_by=("unit",),
         estimators=estimators,
         inference=inference,
-        level=0.95,
-        gates={},
         bootstrap=bootstrap or {},
     )
 

@@ -11,13 +11,13 @@ import json
 import re
 import shutil
 import subprocess
-import sys
 from pathlib import Path
 
 import pytest
 import yaml
 from PIL import Image
 
+from _support import run_panelpipe
 from panelpipe.config import REPO_ROOT
 
 pytestmark = pytest.mark.slow
@@ -62,13 +62,7 @@ def report(tmp_path_factory: pytest.TempPathFactory) -> Path:
         },
     }
     (work / "c.yaml").write_text(yaml.safe_dump(config))
-    done = subprocess.run(
-        [sys.executable, "-m", "panelpipe", "run", "--config", "c.yaml"],
-        cwd=work,
-        capture_output=True,
-        text=True,
-        timeout=600,
-    )
+    done = run_panelpipe(work, "run", "--config", "c.yaml")
     assert done.returncode == 0, done.stderr[-3000:]
     run_id = json.loads(done.stdout.strip().splitlines()[-1])["run_id"]
     return work / "out" / "jobs" / run_id / "report.html"

@@ -6,22 +6,17 @@ import pandas as pd
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from panelpipe.config import AnalysisSettings
+from _support import panel_settings
 from panelpipe.validate import validate_panel
 
-SETTINGS = AnalysisSettings(
+SETTINGS = panel_settings(
     name="p",
     sources=(),
     unit="u",
     period="t",
-    outcome="y",
     regressors=("x",),
-    period_effects=True,
     cluster_by=("u",),
     estimators=("pooled_ols", "fixed_effects"),
-    inference=("classical", "cluster"),
-    level=0.95,
-    gates={},
 )
 
 units = st.sampled_from(["a", "b", " a", "c ", "007", "", None])

@@ -15,7 +15,8 @@ import numpy as np
 import pandas as pd
 
 from .distributions import chi2_sf, f_sf
-from .estimate import MEAN_PREFIX, Design, ModelResult
+from .estimate import MEAN_PREFIX, Design, ModelResult, period_codes
+from .fit import covariance, group_means, least_squares
 
 __all__ = [
     "TestResult",
@@ -160,11 +161,7 @@ def mundlak_test(design: Design, fe: ModelResult) -> TestResult:
 def _mundlak_fit(design: Design, varying: list[str]) -> tuple[pd.Series, pd.DataFrame]:
     """Pooled OLS with unit means added, and its CR1 cluster-robust covariance."""
     unit = design.unit_codes
-    counts = np.bincount(unit).astype(float)
-    xv = design.x[varying].to_numpy()
-    means = np.column_stack(
-        [np.bincount(unit, weights=xv[:, j]) / counts for j in range(xv.shape[1])]
-    )[unit]
+    means = group_means(design.x[varying].to_numpy(), unit)[unit]
     names = [
         "_intercept",
         *design.x.columns,
@@ -174,22 +171,18 @@ def _mundlak_fit(design: Design, varying: list[str]) -> tuple[pd.Series, pd.Data
     x = np.column_stack(
         [np.ones(design.nobs), design.x.to_numpy(), design.period_dummies.to_numpy(), means]
     )
-    y = design.y.to_numpy()
-    xtx = x.T @ x
-    keep = _independent_columns(xtx)
-    x, names = x[:, keep], [names[k] for k in keep]
-    bread = np.linalg.inv(xtx[np.ix_(keep, keep)])
-    beta = bread @ (x.T @ y)
-    resid = y - x @ beta
-    clusters = pd.factorize(design.clusters.iloc[:, 0].to_numpy())[0]
-    g = int(clusters.max()) + 1
-    scores = np.column_stack(
-        [np.bincount(clusters, weights=x[:, j] * resid, minlength=g) for j in range(x.shape[1])]
+    keep = _independent_columns(x.T @ x)
+    names = [str(names[k]) for k in keep]
+    reg = least_squares(
+        design.y.to_numpy(dtype=float),
+        x[:, keep],
+        tuple(names),
+        time=period_codes(design),
+        rows=np.arange(design.nobs),
     )
-    n, k = x.shape
-    factor = g / (g - 1) * (n - 1) / (n - k)
-    cov = factor * bread @ (scores.T @ scores) @ bread
-    return pd.Series(beta, index=names), pd.DataFrame(cov, index=names, columns=names)
+    clusters = design.clusters.iloc[:, 0].to_numpy()
+    cov = covariance(reg, "cluster", clusters=clusters)  # CR1: no effects to count
+    return pd.Series(reg.params, index=names), pd.DataFrame(cov, index=names, columns=names)
 
 
 def _independent_columns(xtx: np.ndarray) -> list[int]:

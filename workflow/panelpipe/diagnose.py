@@ -66,8 +66,8 @@ import scipy.linalg.lapack
 
 from .bootstrap import wild_cluster_bootstrap
 from .distributions import chi2_sf, f_sf, norm_sf, t_sf
-from .estimate import INFERENCE_LABELS, Design, ModelResult
-from .fit import demean, group_sums, ls_coefficients
+from .estimate import INFERENCE_LABELS, Design, ModelResult, period_codes
+from .fit import constant_within, covariance, demean, group_sums, least_squares, ls_coefficients
 from .validate import FEW_CLUSTERS
 
 __all__ = [
@@ -275,8 +275,9 @@ def _cluster_fit(y: FloatArray, X: FloatArray, clusters: IntArray) -> _Fit:
     -----
     :math:`\hat V = c\,(X'X)^{-1}\left(\sum_g X_g'\hat u_g\hat u_g'X_g\right)(X'X)^{-1}`
     with :math:`c = \frac{G}{G-1}\frac{N-1}{N-K}` (Liang & Zeger 1986; Cameron &
-    Miller 2015). Effects absorbed by demeaning within clusters are not counted
-    in K, as in the estimation stage.
+    Miller 2015), computed by the estimation stage's `fit.least_squares` and
+    `fit.covariance`. Effects absorbed by demeaning within clusters are not
+    counted in K, as in the estimation stage.
     """
     codes_raw, uniques = pd.factorize(clusters)
     codes = codes_raw.astype(np.intp)
@@ -284,12 +285,15 @@ def _cluster_fit(y: FloatArray, X: FloatArray, clusters: IntArray) -> _Fit:
     n, k = X.shape
     if g < 2 or n <= k:
         raise np.linalg.LinAlgError(f"{n} rows, {k} columns and {g} cluster(s) are too few")
-    bread = np.linalg.inv(X.T @ X)
-    coef = bread @ (X.T @ y)
-    resid = y - X @ coef
-    scores = group_sums(X * resid[:, None], codes, g)
-    factor = g / (g - 1) * (n - 1) / (n - k)
-    cov = factor * bread @ (scores.T @ scores) @ bread
+    reg = least_squares(
+        y,
+        X,
+        tuple(f"column {j}" for j in range(k)),
+        time=np.zeros(n, dtype=np.intp),
+        rows=np.arange(n),
+    )
+    coef, resid = reg.params, reg.resid
+    cov = covariance(reg, "cluster", clusters=codes)
     return _Fit(coef, resid, cov, g, codes, X, y)
 
 
@@ -335,18 +339,17 @@ class _Index:
 
     @classmethod
     def of(cls, design: Design) -> _Index:
-        unit, units = pd.factorize(design.units)
-        period = pd.factorize(design.periods, sort=True)[0].astype(np.intp)
+        period = period_codes(design)
         col = design.clusters.columns[0]
         cluster, codes = pd.factorize(design.clusters[col].to_numpy())
         cluster = cluster.astype(np.intp)
         labels = pd.Index([str(design.cluster_names[col][c]) for c in codes])
         return cls(
-            unit.astype(np.intp),
+            design.unit_codes.astype(np.intp),
             period,
             cluster,
             labels,
-            len(units),
+            len(design.unit_names),
             int(period.max()) + 1 if len(period) else 0,
         )
 
@@ -376,8 +379,7 @@ class _Index:
 
     def nested(self) -> bool:
         """Whether every unit lies in a single cluster."""
-        pairs = pd.DataFrame({"u": self.unit, "c": self.cluster}).drop_duplicates()
-        return len(pairs) == self.n_units
+        return constant_within(self.cluster, self.unit)
 
 
 @dataclass(frozen=True)

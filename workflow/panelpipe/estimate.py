@@ -22,6 +22,7 @@ from .distributions import f_sf, t_ppf, t_sf
 from .findings import Finding
 from .fit import (
     Regression,
+    constant_within,
     covariance,
     demean,
     group_means,
@@ -78,8 +79,9 @@ class Design:
     period_dummies: pd.DataFrame
     clusters: pd.DataFrame
     settings: AnalysisSettings
-    unit_names: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=object))
-    cluster_names: Mapping[str, np.ndarray] = field(default_factory=dict)
+    unit_names: np.ndarray
+    """The unit's name (text) for each integer unit code."""
+    cluster_names: Mapping[str, np.ndarray]
     """Per cluster column, the cluster's value (text) for each integer code."""
 
     @property
@@ -96,9 +98,7 @@ class Design:
     @property
     def units(self) -> pd.Index:
         """The unit of each row, by name (plain Python strings)."""
-        if len(self.unit_names):
-            return pd.Index(self.unit_names[self.unit_codes], dtype=object)
-        return self.y.index.get_level_values(0)
+        return pd.Index(self.unit_names[self.unit_codes], dtype=object)
 
     @property
     def periods(self) -> pd.Index:
@@ -214,8 +214,8 @@ def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design
     cols = [s.outcome, *s.regressors]
     keep = panel[cols].notna().all(axis=1)
     data = panel.loc[keep].sort_values([s.unit, s.period], kind="stable")
-    # Units enter the index as integer codes: linearmodels groups on them many times
-    # per fit, and integers are far cheaper to hash and compare than text.
+    # Units enter the index as integer codes (0..G-1 in sorted name order): the
+    # numerical core groups on them, and their names are kept beside.
     unit_codes, unit_names = pd.factorize(
         data[s.unit].astype(str).to_numpy(dtype=object), sort=True
     )
@@ -339,11 +339,7 @@ def identifiable(design: Design, key: str) -> tuple[list[str], dict[str, str]]:
 
 
 def _time_invariant(design: Design, j: int) -> bool:
-    col = design.x.iloc[:, j].to_numpy()
-    unit = design.unit_codes
-    starts = np.r_[0, np.flatnonzero(unit[1:] != unit[:-1]) + 1]
-    first = np.repeat(col[starts], np.diff(np.r_[starts, len(col)]))
-    return bool(np.all(col == first))
+    return constant_within(design.x.iloc[:, j].to_numpy(), design.unit_codes)
 
 
 # ---------------------------------------------------------------- fitting
@@ -418,16 +414,9 @@ def _centered_r2(ssr: float, y: np.ndarray, centre: bool = True) -> float:
 
 
 def _nests_units(design: Design) -> bool:
+    """Whether every cluster column is constant within units (units nested in clusters)."""
     unit = design.unit_codes
-    for col in design.clusters.columns:
-        codes = design.clusters[col].to_numpy()
-        lo = np.full(int(unit.max()) + 1, np.iinfo(np.int64).max)
-        hi = np.full_like(lo, np.iinfo(np.int64).min)
-        np.minimum.at(lo, unit, codes)
-        np.maximum.at(hi, unit, codes)
-        if np.any(lo != hi):
-            return False
-    return True
+    return all(constant_within(design.clusters[c].to_numpy(), unit) for c in design.clusters)
 
 
 def _fit(estimator: str, design: Design, terms: list[str]) -> _Fitted:

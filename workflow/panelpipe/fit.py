@@ -27,6 +27,7 @@ import scipy.sparse
 
 __all__ = [
     "Regression",
+    "constant_within",
     "covariance",
     "demean",
     "group_means",
@@ -70,6 +71,18 @@ def group_means(values: FloatArray, codes: IntArray, groups: int | None = None) 
     counts = np.bincount(codes, minlength=g).astype(np.float64)
     sums = group_sums(values, codes, g)
     return sums / (counts if sums.ndim == 1 else counts[:, None])
+
+
+def constant_within(values: FloatArray, codes: IntArray) -> bool:
+    """Whether ``values`` never change within a code (e.g. a regressor within units)."""
+    codes = np.asarray(codes)
+    values = np.asarray(values)
+    if not len(codes):
+        return True
+    present, first_row = np.unique(codes, return_index=True)
+    first = np.zeros(int(codes.max()) + 1, dtype=np.intp)
+    first[present] = first_row
+    return bool(np.all(values == values[first[codes]]))
 
 
 def demean(values: FloatArray, codes: IntArray) -> FloatArray:
