@@ -39,3 +39,66 @@ def panel_settings(**overrides: Any) -> AnalysisSettings:
     }
     base.update(overrides)
     return AnalysisSettings(**base)
+
+
+# ---------------------------------------------------------------- hostile inputs
+#
+# The battery of hostile inputs (tests/test_hostile_*.py) runs each case next to an
+# earlier, complete run folder and asserts that the folder is byte-identical (and
+# keeps its file modes) afterwards: whatever a bad input does, it must never
+# damage what an earlier run published.
+
+HOSTILE_HEADER = "region,year,jobs,grant,coastal\n"
+
+
+def hostile_rows(units: int = 6, years: range = range(2018, 2024)) -> str:
+    """A small, clean region-by-year panel (invented values) without its header."""
+    out = []
+    for u in range(1, units + 1):
+        for y in years:
+            out.append(f"{u:03d},{y},{10 + u + (y * u) % 7},{(u * 3 + y * 7) % 11 + 0.5},{u % 2}")
+    return "\n".join(out) + "\n"
+
+
+def hostile_analysis(**over: Any) -> dict[str, Any]:
+    """An analysis of ``a.csv`` (the panel above) that runs in a few seconds."""
+    base: dict[str, Any] = {
+        "sources": ["a.csv"],
+        "unit": "region",
+        "period": "year",
+        "outcome": "jobs",
+        "regressors": ["grant"],
+        "estimators": ["pooled_ols", "fixed_effects"],
+        "inference": ["classical", "cluster"],
+    }
+    base.update(over)
+    return base
+
+
+def write_hostile_config(cwd: Path, analysis: dict[str, Any], **top: Any) -> Path:
+    """``cwd/c.yaml`` with ``output_dir: out`` and one analysis named ``t``."""
+    import yaml
+
+    path = cwd / "c.yaml"
+    path.write_text(
+        yaml.safe_dump({"output_dir": "out", "analyses": {"t": analysis}, **top}),
+        encoding="utf-8",
+    )
+    return path
+
+
+def folder_snapshot(folder: Path) -> dict[str, tuple[bytes | str, int]]:
+    """Every file and link below ``folder``: its bytes (or link target) and mode."""
+    import os
+
+    snap: dict[str, tuple[bytes | str, int]] = {}
+    for path in sorted(folder.rglob("*")):
+        rel = path.relative_to(folder).as_posix()
+        st = path.lstat()
+        if path.is_symlink():
+            snap[rel] = (os.readlink(path), st.st_mode)
+        elif path.is_file():
+            snap[rel] = (path.read_bytes(), st.st_mode)
+        else:
+            snap[rel] = (b"", st.st_mode)
+    return snap

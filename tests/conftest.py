@@ -7,6 +7,8 @@ reference tests do not depend on the package's own simulation code.
 from __future__ import annotations
 
 from collections.abc import Callable
+from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -62,3 +64,57 @@ def simulate_panel(
 def make_panel() -> Callable[..., pd.DataFrame]:
     """Factory fixture: ``make_panel(n_units=30, n_periods=8, seed=..., n_missing=6)``."""
     return simulate_panel
+
+
+@pytest.fixture(scope="session")
+def earlier_run_template(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A complete earlier run of the small hostile-input panel, made once per session.
+
+    Returns the folder holding ``out/`` (the output_dir with the run) and ``a.csv``.
+    """
+    from _support import (
+        HOSTILE_HEADER,
+        hostile_analysis,
+        hostile_rows,
+        run_panelpipe,
+        write_hostile_config,
+    )
+
+    base = tmp_path_factory.mktemp("earlier")
+    (base / "a.csv").write_text(HOSTILE_HEADER + hostile_rows(), encoding="utf-8")
+    config = write_hostile_config(base, hostile_analysis())
+    done = run_panelpipe(base, "run", "--config", str(config))
+    assert done.returncode == 0, done.stderr[-3000:]
+    return base
+
+
+@pytest.fixture
+def earlier_run(earlier_run_template: Path, tmp_path: Path) -> Callable[[], Any]:
+    """Copy the earlier run into ``tmp_path/out``; returns a checker to call at the end.
+
+    Usage: ``check = earlier_run()`` before the hostile case, ``check()`` after it:
+    the checker asserts that every file of the earlier run folder is byte-identical
+    and keeps its mode.
+    """
+    import shutil
+
+    from _support import folder_snapshot
+
+    def start() -> Callable[[], None]:
+        shutil.copytree(earlier_run_template / "out", tmp_path / "out", symlinks=True)
+        analysis = tmp_path / "out" / "t"
+        runs = [p for p in analysis.iterdir() if p.is_dir()]
+        assert len(runs) == 1
+        before = folder_snapshot(runs[0])
+
+        def check() -> None:
+            assert runs[0].is_dir(), "the earlier run folder is gone"
+            after = folder_snapshot(runs[0])
+            changed = sorted(
+                k for k in before.keys() | after.keys() if before.get(k) != after.get(k)
+            )
+            assert not changed, f"the earlier run folder changed: {changed}"
+
+        return check
+
+    return start
