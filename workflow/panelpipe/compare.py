@@ -68,8 +68,8 @@ def hausman(fe: ModelResult, re: ModelResult) -> TestResult:
     generalised inverse keeps its positive eigenvalues only, and the degrees of
     freedom are their number.
     """
-    name = "Hausman (classical)"
-    null = "unit effects are uncorrelated with the regressors (random effects consistent)"
+    name = "Do fixed and random effects disagree? Hausman test, classical"
+    null = "the unit effects are unrelated to the regressors, so random effects are consistent"
     if "classical" not in fe.inference or "classical" not in re.inference:
         return TestResult(name, null, invalid_reason="classical standard errors were not computed")
     common = [t for t in fe.terms if t in re.terms]
@@ -101,9 +101,10 @@ def hausman(fe: ModelResult, re: ModelResult) -> TestResult:
         proj = vectors[:, positive].T @ diff
         stat = float(np.sum(proj**2 / eig[positive]))
         note = (
-            f"the covariance difference is not positive definite ({len(common) - df} "
-            f"non-positive eigenvalue(s)); a generalised inverse on its positive part was "
-            f"used, with df = {df}"
+            f"The test assumes random effects are the more precise of the two; in "
+            f"{len(common) - df} of the {len(common)} directions they are not here, so "
+            f"those directions were left out (a generalised inverse) and the statistic "
+            f"has {df} degree(s) of freedom. Read it beside the cluster-robust comparison."
         )
     return TestResult(name, null, stat, df, float(chi2_sf(stat, df)), note)
 
@@ -127,8 +128,8 @@ def mundlak_test(design: Design, fe: ModelResult) -> TestResult:
     because the random-effects version refitted a second model and took most
     of the comparison step at a million rows.
     """
-    name = "Hausman (cluster-robust, Mundlak)"
-    null = "the unit means of the regressors add nothing (random effects consistent)"
+    name = "Do fixed and random effects disagree? Hausman test, cluster-robust (unit means)"
+    null = "the unit means of the regressors add nothing, so random effects are consistent"
     varying = list(fe.terms)
     if not varying:
         return TestResult(name, null, invalid_reason="no time-varying regressor to test")
@@ -152,9 +153,10 @@ def mundlak_test(design: Design, fe: ModelResult) -> TestResult:
         stat,
         df,
         float(f_sf(stat / df, df, clusters - 1)),
-        f"Wald statistic W for {df} unit-mean coefficient(s), CR1 cluster-robust covariance "
-        f"with {clusters} clusters; p-value from W/{df} against F({df}, {clusters - 1}). Valid "
-        "under heteroskedastic and serially correlated errors.",
+        f"Joint test of {df} unit-mean coefficient(s) with the clustered covariance over "
+        f"{clusters} clusters; the statistic divided by {df} is compared with an F "
+        f"distribution with {df} and {clusters - 1} degrees of freedom. It holds when "
+        "errors have unequal variances or are correlated within units.",
     )
 
 
@@ -208,8 +210,8 @@ def breusch_pagan_lm(design: Design) -> TestResult:
     null of no unit effect (Breusch & Pagan 1980; unbalanced form of Baltagi &
     Li 1990, which reduces to :math:`NT A^2/(2(T-1))` when balanced).
     """
-    name = "Breusch–Pagan LM (random unit effects)"
-    null = "no unit effects: the variance of the unit effect is zero"
+    name = "Do units carry their own random effect? Breusch–Pagan test"
+    null = "the unit effects have zero variance, so pooled OLS would do"
     x = np.column_stack(
         [np.ones(design.nobs), design.x.to_numpy(), design.period_dummies.to_numpy()]
     )
@@ -230,8 +232,8 @@ def breusch_pagan_lm(design: Design) -> TestResult:
 
 def unit_effects_f(fe: ModelResult) -> TestResult:
     """F test that all unit effects are zero (poolability), from the within fit."""
-    name = "F test of unit effects"
-    null = "all unit effects are zero (pooled OLS adequate)"
+    name = "Do units differ? Joint test of the unit effects"
+    null = "every unit shares one intercept, so pooled OLS would do"
     st = fe.statistics
     if "f_unit_effects" not in st:
         return TestResult(name, null, invalid_reason="the fixed-effects fit gave no F test")
@@ -241,7 +243,9 @@ def unit_effects_f(fe: ModelResult) -> TestResult:
         float(st["f_unit_effects"]),
         int(st["f_unit_effects_df1"]),
         float(st["f_unit_effects_p"]),
-        f"F({int(st['f_unit_effects_df1'])}, {int(st['f_unit_effects_df2'])}), classical.",
+        f"Compared with an F distribution with {int(st['f_unit_effects_df1'])} and "
+        f"{int(st['f_unit_effects_df2'])} degrees of freedom; assumes errors of equal "
+        "variance, uncorrelated within units.",
     )
 
 

@@ -238,12 +238,23 @@ def _svg(fig: Any) -> str:
     return text[text.index("<svg") :]
 
 
+#: Beyond this many regressors the coefficient figure shows the headline term only:
+#: one small panel per term stops being readable.
+MAX_FIGURE_TERMS = 5
+
+
 def coefficient_figure(models: Mapping[str, ModelResult], regressors: Sequence[str]) -> str:
-    """Coefficients of every regressor across estimators, with headline intervals."""
-    n = len(regressors)
-    fig, axes = plt.subplots(1, n, figsize=(3.1 * n, 0.45 * len(models) + 1.4), squeeze=False)
+    """Coefficients across estimators with headline intervals, one panel per term.
+
+    With more than `MAX_FIGURE_TERMS` regressors only the first (the headline
+    term) is drawn.
+    """
+    shown = list(regressors) if len(regressors) <= MAX_FIGURE_TERMS else [regressors[0]]
+    n = len(shown)
+    width = 3.1 * n if n > 1 else 6.0
+    fig, axes = plt.subplots(1, n, figsize=(width, 0.45 * len(models) + 1.4), squeeze=False)
     keys = list(models)
-    for ax, term in zip(axes[0], regressors, strict=True):
+    for ax, term in zip(axes[0], shown, strict=True):
         for i, key in enumerate(keys):
             m = models[key]
             if term not in m.terms:
@@ -267,11 +278,27 @@ def coefficient_figure(models: Mapping[str, ModelResult], regressors: Sequence[s
     return _svg(fig)
 
 
+def _factorize_units(values: pd.Series) -> tuple[np.ndarray, pd.Index]:
+    """Integer codes and levels of unit ids, in numeric order when all are numbers."""
+    codes, levels = pd.factorize(values, sort=True)
+    as_numbers = pd.to_numeric(pd.Series(levels.astype(str)), errors="coerce")
+    if len(levels) and as_numbers.notna().all():
+        order = np.argsort(as_numbers.to_numpy(), kind="stable")
+        rank = np.empty_like(order)
+        rank[order] = np.arange(len(order))
+        return rank[codes], pd.Index(levels[order])
+    return codes, pd.Index(levels)
+
+
 def presence_figure(
     panel: pd.DataFrame, unit: str, period: str, labels: Mapping[str, str] | None = None
 ) -> str:
-    """Which unit was observed in which period (filled = observed)."""
-    unit_codes, unit_levels = pd.factorize(panel[unit], sort=True)
+    """Which unit was observed in which period (filled = observed).
+
+    Units are ordered as numbers when every id reads as one (so 1094 comes
+    before 10043), otherwise as text.
+    """
+    unit_codes, unit_levels = _factorize_units(panel[unit])
     period_codes, period_levels = pd.factorize(panel[period], sort=True)
     n_shown = min(80, len(unit_levels))
     rows = unit_codes < n_shown  # the first units in sorted order
@@ -425,6 +452,7 @@ _ENV = jinja2.Environment(
 _ENV.filters["num"] = _fmt
 _ENV.filters["pvalue"] = _pvalue
 _ENV.filters["term"] = term_label
+_ENV.filters["root"] = lambda v: None if v is None or not v >= 0 else float(np.sqrt(v))
 
 
 STATUS_MARKS = {"ok": "✔", "caution": "▲", "problem": "✖", "not_run": "○"}
@@ -456,6 +484,7 @@ def render_html(context: Mapping[str, Any]) -> str:
         "audit_counts",
         {k: counts[k] for k in ("problem", "caution", "ok", "not_run") if k in counts},
     )
+    context.setdefault("max_figure_terms", MAX_FIGURE_TERMS)
     context.setdefault("estimator_labels", ESTIMATOR_LABELS)
     context.setdefault("inference_labels", INFERENCE_LABELS)
     return _ENV.get_template("report.html.j2").render(**context)

@@ -389,7 +389,10 @@ def report_step(
             },
             "figures": {
                 "coefficients": coefficient_figure(models, settings.regressors),
-                "presence": presence_figure(
+                # A balanced panel's map is a solid block: the page says so in words.
+                "presence": None
+                if summary.get("balanced")
+                else presence_figure(
                     panel, settings.unit, settings.period, summary.get("period_labels")
                 ),
                 "variance": variance_share_figure(panel, settings.unit, settings.regressors),
