@@ -67,22 +67,23 @@ def _utf8_bytes(spec: SourceSpec) -> bytes:
     except (OSError, pa.ArrowException) as exc:
         raise PanelpipeError(f"{path}: cannot read the file ({exc}).") from exc
     encoding = codecs.lookup(spec.encoding).name
-    try:
-        # Decoding checks every byte, also in columns the analysis does not use: a
-        # byte that is wrong anywhere is the sign of a damaged delivery.
-        text = data.decode(encoding)
-    except UnicodeDecodeError as exc:
-        line = data[: exc.start].decode(encoding, errors="replace").count("\n") + 1
-        raise PanelpipeError(
-            f"{path} line {line}: bytes {data[exc.start : exc.end]!r} are not valid "
-            f"{spec.encoding}. Set the 'encoding' option (under csv, or on this source) to "
-            "the file's encoding, e.g. latin-1 or cp1252, or save the file as UTF-8."
-        ) from exc
-    if encoding != "utf-8":
-        data = text.encode("utf-8")
-    del text
+    if not (encoding == "utf-8" and data.isascii()):  # ASCII is valid UTF-8: skip the decode
+        try:
+            # Decoding checks every byte, also in columns the analysis does not use: a
+            # byte that is wrong anywhere is the sign of a damaged delivery.
+            text = data.decode(encoding)
+        except UnicodeDecodeError as exc:
+            line = data[: exc.start].decode(encoding, errors="replace").count("\n") + 1
+            raise PanelpipeError(
+                f"{path} line {line}: bytes {data[exc.start : exc.end]!r} are not valid "
+                f"{spec.encoding}. Set the 'encoding' option (under csv, or on this source) "
+                "to the file's encoding, e.g. latin-1 or cp1252, or save the file as UTF-8."
+            ) from exc
+        if encoding != "utf-8":
+            data = text.encode("utf-8")
+        del text
     data = data.removeprefix(codecs.BOM_UTF8)
-    if not data.strip():
+    if not data or data.isspace():
         raise PanelpipeError(
             f"{path}: the file is empty (not even a header line); remove it from sources "
             "or deliver it again."
@@ -207,15 +208,20 @@ def _field_error(
 def _records(spec: SourceSpec, data: bytes, buf: npt.NDArray[np.uint8]) -> _Records:
     delimiter = ord(_delimiter(spec))
     line_ends = _line_ends(buf, data)
-    flips = np.zeros(0, dtype=np.int64)
-    if data.find(b'"') >= 0:
+    if data.find(b'"') < 0:  # no quoted field: every line end ends a record
+        flips = np.zeros(0, dtype=np.int64)
+        ends = line_ends
+    else:
         flips = _quote_flips(spec.path, buf, line_ends, delimiter)
-    ends = line_ends[np.searchsorted(flips, line_ends) % 2 == 0]
+        ends = line_ends[np.searchsorted(flips, line_ends) % 2 == 0]
     starts = np.concatenate(([0], ends + 1))
     ends = np.append(ends, buf.size)
     if starts[-1] >= buf.size:  # the last line end closes the last record
         starts, ends = starts[:-1], ends[:-1]
-    lines = np.searchsorted(line_ends, starts) + 1
+    if flips.size:
+        lines = np.searchsorted(line_ends, starts) + 1
+    else:
+        lines = np.arange(1, starts.size + 1, dtype=np.int64)
     return _Records(starts, ends, lines, flips, ends.size < line_ends.size)
 
 
