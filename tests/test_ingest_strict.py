@@ -297,3 +297,21 @@ def test_random_damage_is_refused_or_read_exactly(
         for value, (_, ref) in zip(got, body, strict=True):
             want = ref[header.index(column)] if ref else ""
             assert want in MISSING if pd.isna(value) else str(value) == want
+
+
+def test_each_source_keeps_its_own_decimal_mark(tmp_path: Path) -> None:
+    from panelpipe.config import validate_config
+
+    old = write(tmp_path, "region;year;jobs;grant\n001;2020;1,5;1\n002;2020;x;1\n", "old.csv")
+    new = write(tmp_path, "region,year,jobs,grant\n001,2021,2.5,1\n002,2021,3,1\n", "new.csv")
+    entries = [{"path": str(old), "delimiter": ";", "decimal": ",", "thousands": "."}, str(new)]
+    config = validate_config(
+        {"analyses": {"t": {**settings_for(old).to_dict(), "sources": entries}}}
+    )
+    s = settings_for(old)
+    s = AnalysisSettings(**{**s.__dict__, "sources": tuple(config["analyses"]["t"]["sources"])})
+    specs = [SourceSpec(old, delimiter=";", decimal=",", thousands="."), SourceSpec(new)]
+    result = validate_panel(read_panel(specs, COLUMNS, text=["region", "year"]), s)
+    f = next(f for f in result.findings if f.code == "non_numeric")
+    assert "old.csv line 3" in f.message and "'x'" in f.message  # only the text cell
+    assert "'2.5'" not in f.message and "'1,5'" not in f.message
