@@ -123,7 +123,7 @@ CASES: dict[str, Case] = {
     "one-period-only": Case(
         {"a.csv": HEADER + rows(years=range(2020, 2021))}, 1, ["too_few_periods", "'year'"]
     ),
-    "header-only": Case({"a.csv": HEADER}, 1, ["too_few_units"]),
+    "header-only": Case({"a.csv": HEADER}, 2, ["a.csv: has a header but no data rows"]),
     "constant-regressor": Case(
         {},
         1,

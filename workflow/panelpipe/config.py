@@ -7,7 +7,9 @@ checks a schema cannot express, such as that every source file exists.
 
 from __future__ import annotations
 
+import codecs
 import copy
+import fnmatch
 import glob
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -27,6 +29,7 @@ __all__ = [
     "analysis_settings",
     "load_config",
     "resolve_sources",
+    "source_spec_of",
     "source_specs",
     "validate_config",
 ]
@@ -228,7 +231,15 @@ def resolve_sources(sources: tuple[Any, ...] | list[Any], *, analysis: str) -> l
 
 @dataclass(frozen=True)
 class SourceSpec:
-    """One file to read, with the CSV options and renames that apply to it."""
+    """One file to read, with the CSV options and renames that apply to it.
+
+    Raises
+    ------
+    PanelpipeError
+        If an option cannot be used to read a file (a delimiter that is not one
+        ASCII character, an encoding Python does not know, one mark used for two
+        purposes), naming the file and the option.
+    """
 
     path: Path
     delimiter: str = ","
@@ -236,6 +247,69 @@ class SourceSpec:
     encoding: str = "utf-8"
     missing: tuple[str, ...] = ("", "NA", "N/A", "n/a", "NaN", "nan", "NULL", "null", ".")
     rename: Mapping[str, str] = field(default_factory=dict)
+    thousands: str = ""
+
+    def __post_init__(self) -> None:
+        where = f"{self.path}: the 'delimiter' option"
+        if len(self.delimiter) != 1 or not self.delimiter.isascii():
+            raise PanelpipeError(
+                f"{where} {self.delimiter!r} must be one ASCII character, such as ',', ';', "
+                "'|' or a tab; save the file with such a delimiter."
+            )
+        if self.delimiter in {'"', "\n", "\r"} or self.delimiter.isalnum():
+            raise PanelpipeError(
+                f"{where} {self.delimiter!r} cannot be a quote, a line end, a letter or a "
+                "digit; use ',', ';', '|' or a tab."
+            )
+        marks = {"delimiter": self.delimiter, "decimal": self.decimal}
+        if self.thousands:
+            marks["thousands"] = self.thousands
+        if len(set(marks.values())) < len(marks):
+            raise PanelpipeError(
+                f"{self.path}: the options {', '.join(f'{k}={v!r}' for k, v in marks.items())} "
+                "use one character for two purposes; numbers could not be told apart. "
+                "Change the 'csv' options (or this source's)."
+            )
+        try:
+            codecs.lookup(self.encoding)
+        except LookupError:
+            raise PanelpipeError(
+                f"{self.path}: the encoding {self.encoding!r} is not one Python knows; use a "
+                "name such as utf-8, latin-1, cp1252 or utf-16."
+            ) from None
+
+
+def _entry_options(entry: str | Mapping[str, Any], csv: Mapping[str, Any]) -> dict[str, Any]:
+    """The `SourceSpec` keyword arguments of a sources entry (analysis defaults first)."""
+    options = {**csv, **({} if isinstance(entry, str) else entry)}
+    kwargs: dict[str, Any] = {}
+    for key in ("delimiter", "decimal", "encoding", "thousands"):
+        if key in options:
+            kwargs[key] = str(options[key])
+    if "missing" in options:
+        kwargs["missing"] = tuple(str(m) for m in options["missing"])
+    if "rename" in options:
+        kwargs["rename"] = dict(options["rename"])
+    return kwargs
+
+
+def source_spec_of(
+    path: str, sources: tuple[Any, ...] | list[Any], csv: Mapping[str, Any]
+) -> SourceSpec:
+    """The reading options of a file already read, from the entry that listed it.
+
+    Pure (no file system): a plain entry matches its own path, a glob matches
+    part by part as `glob.glob` does. A file no entry matches gets the analysis
+    defaults.
+    """
+    parts = Path(path).parts
+    for entry in sources:
+        pattern = Path(_entry_path(entry)).parts
+        if len(pattern) == len(parts) and all(
+            fnmatch.fnmatchcase(p, q) for p, q in zip(parts, pattern, strict=True)
+        ):
+            return SourceSpec(Path(path), **_entry_options(entry, csv))
+    return SourceSpec(Path(path), **_entry_options("", csv))
 
 
 def source_specs(
@@ -245,16 +319,7 @@ def source_specs(
     specs: list[SourceSpec] = []
     for entry in sources:
         pattern = _entry_path(entry)
-        options = {**csv, **({} if isinstance(entry, str) else entry)}
-        options.pop("path", None)
-        kwargs: dict[str, Any] = {}
-        for key in ("delimiter", "decimal", "encoding"):
-            if key in options:
-                kwargs[key] = str(options[key])
-        if "missing" in options:
-            kwargs["missing"] = tuple(str(m) for m in options["missing"])
-        if "rename" in options:
-            kwargs["rename"] = dict(options["rename"])
+        kwargs = _entry_options(entry, csv)
         if glob.has_magic(pattern):
             matches = sorted(glob.glob(pattern))
             if not matches:

@@ -15,13 +15,14 @@ Finding codes (stable): ``unit_whitespace``, ``missing_unit``, ``missing_period`
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
-from .config import AnalysisSettings
+from .config import AnalysisSettings, SourceSpec, source_spec_of
 from .findings import Finding, Severity, worst_status
 from .ingest import LINE, SOURCE
 from .periods import label_of, parse_periods
@@ -266,11 +267,54 @@ def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) ->
     return panel.drop_duplicates(keys, keep="last")
 
 
+def _number_pattern(decimal: str, thousands: str) -> str:
+    """A number written with this decimal mark and, if given, thousands separator."""
+    d, t = re.escape(decimal), re.escape(thousands)
+    whole = rf"(?:\d{{1,3}}(?:{t}\d{{3}})+|\d+)" if thousands else r"\d+"
+    return (
+        rf"[+-]?(?:{whole}(?:{d}\d*)?|{d}\d+)(?:[eE][+-]?\d+)?"
+        r"|[+-]?(?:inf|infinity)"  # read, then refused as non_finite
+    )
+
+
+def _numbers_of_source(text: pd.Series, spec: SourceSpec) -> pd.Series:
+    """Numbers from text written with the source's marks; NaN where it is not one."""
+    decimal, thousands = (
+        ("." if spec.path.suffix.lower() in {".parquet", ".pq"} else spec.decimal),
+        (spec.thousands),
+    )
+    ok = text.str.fullmatch(_number_pattern(decimal, thousands), case=False).fillna(False)
+    plain = text.where(ok)
+    if thousands:
+        plain = plain.str.replace(thousands, "", regex=False)
+    plain = plain.str.replace(decimal, ".", regex=False)
+    return pd.to_numeric(plain, errors="coerce").astype("float64")
+
+
+def _to_numbers(raw: pd.Series, panel: pd.DataFrame, s: AnalysisSettings) -> pd.Series:
+    """Numbers of one column; text is read with the marks of the source it came from.
+
+    A cell that is not a number written with its own file's decimal mark (and
+    thousands separator, where one is set) becomes NaN: ``20.849`` under a decimal
+    comma is never taken for 20.849.
+    """
+    if pd.api.types.is_numeric_dtype(raw.dtype) and not pd.api.types.is_bool_dtype(raw.dtype):
+        return raw.astype("float64")
+    is_text = raw.map(lambda v: isinstance(v, str), na_action="ignore").fillna(False).astype(bool)
+    values = pd.to_numeric(raw.where(~is_text), errors="coerce").astype("float64")
+    sources = panel[SOURCE].astype("string")
+    for source in sources[is_text].unique():
+        rows = is_text & (sources == source)
+        spec = source_spec_of(str(source), s.sources, s.csv)
+        values[rows] = _numbers_of_source(raw[rows].astype("string"), spec)
+    return values
+
+
 def _check_numeric(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> pd.DataFrame:
     converted: dict[str, pd.Series] = {}
     for col in dict.fromkeys((s.outcome, *s.regressors)):
         raw = panel[col]
-        values = pd.to_numeric(raw, errors="coerce").astype("float64")
+        values = _to_numbers(raw, panel, s)
         not_number = values.isna() & raw.notna()
         if not_number.any():
             sample = ", ".join(repr(str(v)) for v in raw[not_number].head(3))
@@ -279,9 +323,11 @@ def _check_numeric(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding])
                 panel,
                 not_number,
                 "non_numeric",
-                f"hold text where column {col!r} needs a number (e.g. {sample})",
-                "Correct the values, leave them empty for missing, or list the marker "
-                "under csv.missing.",
+                f"hold text where column {col!r} needs a number written with the file's "
+                f"decimal mark (e.g. {sample})",
+                "Correct the values, leave them empty for missing, list the marker "
+                "under csv.missing, or set csv.decimal (and csv.thousands) to the file's "
+                "marks.",
                 col,
             )
         infinite = pd.Series(np.isinf(values.to_numpy()), index=values.index)
