@@ -157,10 +157,10 @@ def test_selection_on_the_regressor_is_flagged_and_says_what_differs() -> None:
 def test_the_selection_test_has_its_nominal_size_and_power() -> None:
     """200 replications at random and 200 with selection, 40 regions x 6 years.
 
-    Measured when the test was written (seeds 0-199): flagged 0.035 of the
-    missing-at-random panels (the two tests share the nominal 5% by Bonferroni;
-    the jackknife covariance is slightly conservative) and 1.00 of the selected
-    ones. The band is the central 99% of Binomial(200, 0.05) (scipy).
+    Measured when the test was written: flagged 0.080 of the missing-at-random
+    panels with seeds 0-199 and 0.049 over seeds 0-799 (the two tests share the
+    nominal 5% by Bonferroni), and 0.955 of the selected ones (seeds 0-199). The
+    band is the central 99% of Binomial(200, 0.05) (scipy), 3 to 19 flags.
     """
     reps = 200
     s = settings()
@@ -168,7 +168,7 @@ def test_the_selection_test_has_its_nominal_size_and_power() -> None:
         fe_only(regions(seed, missing=0.25), s).status in FLAGGED for seed in range(reps)
     )
     selected = sum(
-        fe_only(regions(seed, missing=0.1, high_x_missing=0.3), s).status in FLAGGED
+        fe_only(regions(seed, missing=0.1, high_x_missing=0.4), s).status in FLAGGED
         for seed in range(reps)
     )
     low, high = stats.binom.ppf([0.005, 0.995], reps, THRESHOLDS["alpha"])

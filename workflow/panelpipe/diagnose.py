@@ -90,10 +90,10 @@ __all__ = [
     "Status",
     "groupwise_heteroskedasticity",
     "leave_one_cluster_out",
+    "missing_data_audit",
     "oster_beta_star",
     "oster_delta",
     "pesaran_cd",
-    "missing_data_audit",
     "run_audit",
 ]
 
@@ -1083,7 +1083,7 @@ class _Loss:
     gone: npt.NDArray[np.bool_]
     unit: IntArray
     period: IntArray
-    cluster: npt.NDArray[np.object_]
+    cluster: IntArray
     n_periods: int
     rows_used: int
     units_used: int
@@ -1099,7 +1099,9 @@ class _Loss:
             panel[list(columns)].isna().to_numpy(),
             unit.astype(np.intp),
             period.astype(np.intp),
-            panel[s.cluster_by[0]].astype(str).to_numpy(dtype=object),
+            pd.factorize(panel[s.cluster_by[0]].astype(str).to_numpy(dtype=object))[0].astype(
+                np.intp
+            ),
             len(levels),
             design.nobs,
             len(design.unit_names),
@@ -1107,8 +1109,7 @@ class _Loss:
 
     @cached_property
     def dropped(self) -> npt.NDArray[np.bool_]:
-        out: npt.NDArray[np.bool_] = self.gone.any(axis=1)
-        return out
+        return np.asarray(self.gone.any(axis=1), dtype=bool)
 
     def units_of(self, rows: npt.NDArray[np.bool_]) -> int:
         return int(np.unique(self.unit[rows]).size)
@@ -1167,7 +1168,7 @@ def _indicator_test(
     indicator: FloatArray,
     covariates: FloatArray,
     controls: FloatArray,
-    clusters: npt.NDArray[np.object_],
+    clusters: IntArray,
 ) -> tuple[float, float, int, _Fit] | None:
     """Wald F that ``covariates`` do not predict ``indicator`` given ``controls``.
 
@@ -1213,17 +1214,19 @@ def _selection_tests(ctx: _Context, loss: _Loss) -> dict[str, dict[str, Any]]:
     # Rows with every regressor observed: does missing the outcome go with the
     # regressors' values? Pooled (no unit effects), so that units whose regressors
     # are high throughout and whose outcome goes missing more often are compared too.
-    rows = ~loss.gone[:, 1:].any(axis=1)
+    rows = np.asarray(~loss.gone[:, 1:].any(axis=1), dtype=bool)
     if rows.any():
         res = _indicator_test(
-            loss.gone[rows, 0].astype(float), values[rows, 1:], controls(rows, False),
+            loss.gone[rows, 0].astype(float),
+            values[rows, 1:],
+            controls(rows, False),
             loss.cluster[rows],
         )
         if res is not None:
             out["outcome_missing_on_regressors"] = _test_entry(res, "pooled, period effects")
     # Rows with the outcome observed: does missing a regressor go with the outcome?
     # Unit effects where the indicator varies within units, pooled otherwise.
-    rows = ~loss.gone[:, 0]
+    rows = np.asarray(~loss.gone[:, 0], dtype=bool)
     if rows.any() and loss.gone[rows, 1:].any():
         flag = loss.gone[rows, 1:].any(axis=1).astype(float)
         unit = pd.factorize(loss.unit[rows])[0].astype(np.intp)
@@ -2079,7 +2082,8 @@ def run_audit(
     Wooldridge (2010, §10.7.1) for strict exogeneity; Ramsey (1969) for the
     functional form; Griliches & Hausman (1986, *J. Econometrics*) for
     measurement error; Nijman & Verbeek (1992) and Wooldridge (2010, §19.9) for
-    attrition and missing values (with Wooldridge 2007, *J. Econometrics*); Wooldridge (2010, §10.6.3) for serial correlation; Pesaran (2004,
+    attrition and missing values (with Wooldridge 2007, *J. Econometrics*);
+    Wooldridge (2010, §10.6.3) for serial correlation; Pesaran (2004,
     2015) for cross-sectional dependence; Greene, *Econometric Analysis*, for
     groupwise heteroskedasticity; MacKinnon, Nielsen & Webb (2023, *J.
     Econometrics*) for few and influential clusters. Wald and t tests use the
