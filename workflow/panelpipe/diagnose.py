@@ -1816,13 +1816,18 @@ def _few_clusters(ctx: _Context) -> Diagnostic:
     return Diagnostic(key, status, message, float(g), None, None, effect, details)
 
 
+def _p_text(p: float) -> str:
+    """A p-value as text: "< 0.001" below that (a bootstrap p-value of 0 is not exact)."""
+    return "< 0.001" if p < 0.001 else f"= {_fmt(p)}"
+
+
 def _bootstrap_advice(ctx: _Context, effect: Mapping[str, Any], details: Mapping[str, Any]) -> str:
     """What to read instead of the clustered p-value: only a bootstrap that was run."""
     if not effect:
         why = str(details.get("wild_bootstrap", "")).removeprefix("not run: ")
         return f"add wild_bootstrap to inference (the audit could not run one: {why})"
-    p, cp = effect["wild_bootstrap_p_value"], effect["cluster_p_value"]
-    quoted = f"p = {_fmt(p)} for {ctx.focus} against {_fmt(cp)} clustered"
+    p, cp = (_p_text(effect[k]) for k in ("wild_bootstrap_p_value", "cluster_p_value"))
+    quoted = f"p {p} for {ctx.focus} against {cp} clustered"
     if details.get("wild_bootstrap") == "from the estimation stage":
         return f"compare the wild cluster bootstrap of the estimates ({quoted})"
     draws = int(THRESHOLDS["bootstrap_draws"])
