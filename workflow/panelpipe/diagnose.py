@@ -24,6 +24,12 @@ measurement_error           within share of each regressor's variance; FE minus
 attrition                   exits, late entries, gaps; next-period presence
                             added to the FE model, t(G-1) confirmed by a wild
                             cluster bootstrap (problem: both reject)
+missing_data                rows and units lost to missing values, per reason;
+                            dropped vs used rows on the observed regressors
+                            and on the outcome, and the next row's loss added
+                            to the FE model, Bonferroni over the tests run
+                            (caution: the rows differ; problem: the FE test
+                            rejects)
 serial_correlation          FD residuals on their lag, coefficient -0.5 under
                             the null, t(G-1) (caution if the headline is
                             clustered, else problem)
@@ -66,7 +72,13 @@ import scipy.linalg.lapack
 
 from .bootstrap import wild_cluster_bootstrap
 from .distributions import chi2_sf, f_sf, norm_sf, t_sf
-from .estimate import INFERENCE_LABELS, Design, ModelResult, period_codes
+from .estimate import (
+    INFERENCE_LABELS,
+    Design,
+    ModelResult,
+    first_difference_rows,
+    period_codes,
+)
 from .fit import constant_within, covariance, demean, group_sums, least_squares, ls_coefficients
 from .validate import FEW_CLUSTERS
 
@@ -78,6 +90,7 @@ __all__ = [
     "Status",
     "groupwise_heteroskedasticity",
     "leave_one_cluster_out",
+    "missing_data_audit",
     "oster_beta_star",
     "oster_delta",
     "pesaran_cd",
@@ -95,6 +108,7 @@ DIAGNOSTIC_KEYS = (
     "functional_form",
     "measurement_error",
     "attrition",
+    "missing_data",
     "serial_correlation",
     "cross_sectional_dependence",
     "heteroskedasticity",
@@ -420,10 +434,30 @@ class _Context:
     first_diff: _FirstDiff | None
     missing: str
     fd_missing: str
+    panel: pd.DataFrame | None = None
+    """The validated panel before rows with missing values were dropped, if given."""
 
     @property
     def alpha(self) -> float:
         return THRESHOLDS["alpha"]
+
+    @cached_property
+    def loss(self) -> _Loss | None:
+        """Rows of ``panel`` dropped for a missing outcome or regressor (None: no panel)."""
+        return None if self.panel is None else _Loss.of(self.panel, self.design)
+
+    def ran(self, *keys: str) -> list[str]:
+        """Those of the inference ``keys`` the fixed-effects model was estimated with."""
+        inference = self.models["fixed_effects"].inference if "fixed_effects" in self.models else {}
+        return [k for k in keys if k in inference]
+
+    def remedy(self, *keys: str) -> str:
+        """Advice to use inference ``keys``: read them if the run has them, else add one."""
+        ran = self.ran(*keys)
+        if ran:
+            labels = " or ".join(INFERENCE_LABELS[k] for k in ran)
+            return f"read the {labels} standard errors in the estimates instead"
+        return f"add {' or '.join(keys)} to inference"
 
     @property
     def fe(self) -> ModelResult:
@@ -480,7 +514,12 @@ def _first_diff(design: Design, within: _Within, index: _Index) -> _FirstDiff:
     return _FirstDiff(rows, _cluster_fit(dy, np.hstack([dx, dd]), index.cluster[rows]))
 
 
-def _context(design: Design, models: Mapping[str, ModelResult], focus: str) -> _Context:
+def _context(
+    design: Design,
+    models: Mapping[str, ModelResult],
+    focus: str,
+    panel: pd.DataFrame | None = None,
+) -> _Context:
     index = _Index.of(design)
     within: _Within | None = None
     first_diff: _FirstDiff | None = None
@@ -505,7 +544,7 @@ def _context(design: Design, models: Mapping[str, ModelResult], focus: str) -> _
             first_diff = _first_diff(design, within, index)
         except np.linalg.LinAlgError as exc:
             fd_missing = f"first differences cannot be estimated ({exc})"
-    return _Context(design, models, focus, index, within, first_diff, missing, fd_missing)
+    return _Context(design, models, focus, index, within, first_diff, missing, fd_missing, panel)
 
 
 def _subsample_fit(
@@ -931,14 +970,26 @@ def _attrition(ctx: _Context) -> Diagnostic:
         "missing_unit_periods": int(ix.n_units * t - len(ix.unit)),
     }
     details: dict[str, Any] = {"pattern": pattern, "presence": "in the estimation sample"}
-    if pattern["complete_units"] == ix.n_units:
-        return Diagnostic(
-            key,
-            "ok",
-            "The panel is balanced: every unit is observed in every period, so there is no "
-            "attrition to test.",
-            details=details,
+    loss = ctx.loss
+    lost = ""
+    if loss is not None and loss.dropped.any():
+        c = loss.counts()
+        lost = (
+            f"{c['rows_dropped']} rows of {c['units_with_dropped_rows']} units were dropped for "
+            "missing values"
         )
+    if pattern["complete_units"] == ix.n_units:
+        if lost:
+            message = (
+                f"Each of the {ix.n_units} units used is in every period of the rows used, so no "
+                f"unit leaves them; {lost} before estimation (see the missing-data check)."
+            )
+        else:
+            message = (
+                "The panel is balanced: every unit is observed in every period, so there is no "
+                "attrition to test."
+            )
+        return Diagnostic(key, "ok", message, details=details)
     rows = np.flatnonzero(ix.period < t - 1)
     present = (ix.shifted(1)[rows] >= 0).astype(float)[:, None]
     parts = [
@@ -951,6 +1002,8 @@ def _attrition(ctx: _Context) -> Diagnostic:
         if n
     ]
     summary = ", ".join(parts[:-1]) + (" and " if len(parts) > 1 else "") + parts[-1]
+    if lost:
+        summary = f"After {lost}, {summary} in the rows used"
     try:
         out = _subsample_fit(ctx, rows, present)
     except np.linalg.LinAlgError as exc:
@@ -1014,6 +1067,372 @@ def _attrition(ctx: _Context) -> Diagnostic:
     return Diagnostic(key, status, message, tstat, p, fit.clusters - 1, effect, details)
 
 
+# ---------------------------------------------------------------- missing values
+
+
+@dataclass(frozen=True)
+class _Loss:
+    """The rows loaded, which of them estimation dropped, and why.
+
+    ``gone`` marks, per row of the validated panel, a missing value in each of
+    ``columns`` (the outcome first, then the regressors); a row with any is
+    dropped by every estimator (`panelpipe.estimate.make_design`).
+    """
+
+    columns: tuple[str, ...]
+    gone: npt.NDArray[np.bool_]
+    unit: IntArray
+    period: IntArray
+    cluster: IntArray
+    n_periods: int
+    rows_used: int
+    units_used: int
+
+    @classmethod
+    def of(cls, panel: pd.DataFrame, design: Design) -> _Loss:
+        s = design.settings
+        columns = (s.outcome, *s.regressors)
+        unit = pd.factorize(panel[s.unit].astype(str).to_numpy(dtype=object), sort=True)[0]
+        period, levels = pd.factorize(panel[s.period].to_numpy(), sort=True)
+        return cls(
+            columns,
+            panel[list(columns)].isna().to_numpy(),
+            unit.astype(np.intp),
+            period.astype(np.intp),
+            pd.factorize(panel[s.cluster_by[0]].astype(str).to_numpy(dtype=object))[0].astype(
+                np.intp
+            ),
+            len(levels),
+            design.nobs,
+            len(design.unit_names),
+        )
+
+    @cached_property
+    def dropped(self) -> npt.NDArray[np.bool_]:
+        return np.asarray(self.gone.any(axis=1), dtype=bool)
+
+    def units_of(self, rows: npt.NDArray[np.bool_]) -> int:
+        return int(np.unique(self.unit[rows]).size)
+
+    def counts(self) -> dict[str, int]:
+        return {
+            "rows_loaded": len(self.unit),
+            "units_loaded": self.units_of(np.ones(len(self.unit), dtype=bool)),
+            "rows_dropped": int(self.dropped.sum()),
+            "units_with_dropped_rows": self.units_of(self.dropped),
+            "rows_used": self.rows_used,
+            "units_used": self.units_used,
+        }
+
+    def by_reason(self) -> dict[str, dict[str, int]]:
+        """Rows and units missing each column (a row may miss several)."""
+        return {
+            c: {"rows": int(self.gone[:, j].sum()), "units": self.units_of(self.gone[:, j])}
+            for j, c in enumerate(self.columns)
+        }
+
+    def next_row(self) -> IntArray:
+        """Row of the same unit in the panel's next period, or -1."""
+        t = self.n_periods
+        table = np.full((int(self.unit.max()) + 1) * t, -1, dtype=np.intp)
+        key = self.unit * t + self.period
+        table[key] = np.arange(len(key))
+        out = np.full(len(key), -1, dtype=np.intp)
+        ok = self.period + 1 < t
+        out[ok] = table[key[ok] + 1]
+        return out
+
+    def sentence(self) -> str:
+        """How many rows were dropped and why, and what was left."""
+        c = self.counts()
+        reasons = ", ".join(
+            f"{r['rows']} for a missing {col}" for col, r in self.by_reason().items() if r["rows"]
+        )
+        return (
+            f"{c['rows_dropped']} of {c['rows_loaded']} rows were dropped for missing values "
+            f"({reasons}), leaving {c['rows_used']} rows of {c['units_used']} of the "
+            f"{c['units_loaded']} units"
+        )
+
+
+def _period_dummies(period: IntArray) -> FloatArray:
+    """A dummy for every period code but the lowest one present."""
+    codes = pd.factorize(period, sort=True)[0]
+    d = np.zeros((len(codes), max(int(codes.max(initial=0)), 0)))
+    rows = np.flatnonzero(codes > 0)
+    d[rows, codes[rows] - 1] = 1.0
+    return d
+
+
+def _indicator_test(
+    indicator: FloatArray,
+    covariates: FloatArray,
+    controls: FloatArray,
+    clusters: IntArray,
+) -> tuple[float, float, int, _Fit] | None:
+    """Wald F that ``covariates`` do not predict ``indicator`` given ``controls``.
+
+    A linear probability model with a cluster-robust (CV3, else CR1) covariance.
+    The Wald statistic W/q is scaled by (G-q)/(G-1) and referred to F(q, G-q),
+    Hotelling's T-squared correction for a covariance estimated from G cluster
+    sums (common practice for cluster-robust Wald tests, e.g. Cameron & Miller
+    2015); with one covariate it is the t-test against t(G-1). None when the
+    indicator does not vary or nothing is testable.
+    """
+    if indicator.min() == indicator.max():
+        return None
+    keep = _independent(controls, covariates)
+    if len(keep) == 0:
+        return None
+    first, q = controls.shape[1], len(keep)
+    try:
+        fit = _cluster_fit(indicator, np.hstack([controls, covariates[:, keep]]), clusters)
+    except np.linalg.LinAlgError:
+        return None
+    g = fit.clusters
+    if g <= q:
+        return None
+    wald, _ = fit.wald(list(range(first, first + q)))
+    stat = wald * (g - q) / (g - 1)
+    return stat, float(f_sf(stat, q, g - q)), q, fit
+
+
+def _selection_tests(ctx: _Context, loss: _Loss) -> dict[str, dict[str, Any]]:
+    """The three tests of `_missing_data` that apply, by name."""
+    s = ctx.design.settings
+    panel = ctx.panel
+    assert panel is not None
+    values = panel[list(loss.columns)].to_numpy(dtype=float)
+    out: dict[str, dict[str, Any]] = {}
+
+    def controls(rows: npt.NDArray[np.bool_], within: bool) -> FloatArray:
+        d = _period_dummies(loss.period[rows]) if s.period_effects else np.zeros((rows.sum(), 0))
+        if within:
+            return demean(d, pd.factorize(loss.unit[rows])[0].astype(np.intp)) if d.size else d
+        return np.hstack([np.ones((int(rows.sum()), 1)), d])
+
+    # Rows with every regressor observed: does missing the outcome go with the
+    # regressors' values? Pooled (no unit effects), so that units whose regressors
+    # are high throughout and whose outcome goes missing more often are compared too.
+    rows = np.asarray(~loss.gone[:, 1:].any(axis=1), dtype=bool)
+    if rows.any():
+        res = _indicator_test(
+            loss.gone[rows, 0].astype(float),
+            values[rows, 1:],
+            controls(rows, False),
+            loss.cluster[rows],
+        )
+        if res is not None:
+            out["outcome_missing_on_regressors"] = _test_entry(res, "pooled, period effects")
+    # Rows with the outcome observed: does missing a regressor go with the outcome?
+    # Unit effects where the indicator varies within units, pooled otherwise.
+    rows = np.asarray(~loss.gone[:, 0], dtype=bool)
+    if rows.any() and loss.gone[rows, 1:].any():
+        flag = loss.gone[rows, 1:].any(axis=1).astype(float)
+        unit = pd.factorize(loss.unit[rows])[0].astype(np.intp)
+        within = not constant_within(flag, unit)
+        y = values[rows, :1]
+        res = _indicator_test(
+            demean(flag[:, None], unit)[:, 0] if within else flag,
+            demean(y, unit) if within else y,
+            controls(rows, within),
+            loss.cluster[rows],
+        )
+        if res is not None:
+            how = "unit and period effects" if within else "pooled, period effects"
+            out["regressor_missing_on_outcome"] = _test_entry(res, how)
+    # Wooldridge (2010, §19.9): in the fixed-effects model on the rows used, is
+    # losing the unit's next row to a missing value related to today's shock?
+    if ctx.within is not None:
+        key = pd.MultiIndex.from_arrays(
+            [panel[s.unit].astype(str).to_numpy(dtype=object), panel[s.period].to_numpy()]
+        )
+        position = key.get_indexer(
+            pd.MultiIndex.from_arrays([ctx.design.units, ctx.design.periods])
+        )
+        nxt = loss.next_row()[position]
+        used = np.flatnonzero(nxt >= 0)
+        if len(used):
+            lost_next = loss.dropped[nxt[used]].astype(float)[:, None]
+            try:
+                fitted = _subsample_fit(ctx, used, lost_next)
+            except np.linalg.LinAlgError:
+                fitted = None
+            if fitted is not None:
+                fit, cols, _ = fitted
+                t, p = fit.t_test(cols[0])
+                out["next_row_lost_in_fixed_effects"] = {
+                    "statistic": t,
+                    "p_value": p,
+                    "df": 1,
+                    "reference": f"t({fit.clusters - 1})",
+                    "covariance": fit.test_covariance,
+                    "model": "fixed effects on the rows used",
+                    "nobs": fit.nobs,
+                    "coefficient": float(fit.coef[cols[0]]),
+                    "estimate_with_indicator": float(fit.coef[ctx.within.focus]),
+                }
+    return out
+
+
+def _test_entry(res: tuple[float, float, int, _Fit], model: str) -> dict[str, Any]:
+    stat, p, q, fit = res
+    return {
+        "statistic": stat,
+        "p_value": p,
+        "df": q,
+        "reference": f"F({q}, {fit.clusters - q})",
+        "covariance": fit.test_covariance,
+        "model": f"linear probability, {model}",
+        "nobs": fit.nobs,
+    }
+
+
+def _by_estimator(design: Design, loss: _Loss) -> dict[str, dict[str, Any]]:
+    """Rows each configured estimator uses, and why it lost the others."""
+    dropped = int(loss.dropped.sum())
+    why_missing = f"{dropped} rows with a missing outcome or regressor"
+    out: dict[str, dict[str, Any]] = {}
+    for key in design.settings.estimators:
+        if key == "first_difference":
+            out[key] = {
+                "rows_used": len(first_difference_rows(design)),
+                "lost": f"{why_missing}, and each row whose previous period is not among the "
+                "rows used (a difference needs both)",
+            }
+        elif key == "between":
+            out[key] = {
+                "rows_used": len(design.unit_names),
+                "lost": f"{why_missing}; one mean per unit",
+            }
+        else:
+            out[key] = {"rows_used": design.nobs, "lost": why_missing}
+    return out
+
+
+def _missing_data(ctx: _Context) -> Diagnostic:
+    r"""Rows lost to missing values, and whether the lost rows differ from those used.
+
+    Notes
+    -----
+    Missing values inside the span are a selection problem like exit
+    (Wooldridge 2010, §19.9; Wooldridge 2007, *J. Econometrics* 141, on
+    selection on observables and inverse-probability weighting). Up to three
+    tests, each a regression with a cluster-robust (CV3, else CR1) covariance:
+
+    1. rows with every regressor observed: an indicator of a missing outcome on
+       the regressors (linear probability, period effects, no unit effects),
+       Wald F(K, G-1): do the dropped rows differ in their regressors?
+    2. rows with the outcome observed: an indicator of a missing regressor on the
+       outcome, with unit effects when the indicator varies within units, F(1, G-1):
+       do they differ in their outcome path?
+    3. the variable-addition test of Wooldridge (2010, §19.9) and Nijman & Verbeek
+       (1992): the fixed-effects model on the rows used with an indicator that
+       the unit's next row was dropped, t(G-1): is losing rows related to the
+       outcome shocks, which biases fixed effects?
+
+    Each test is judged at alpha/m for the m tests run (Bonferroni), so the check
+    flags about alpha of the panels whose values are missing at random. Test 3
+    rejecting is a ``problem``; tests 1 or 2 rejecting a ``caution`` (selection on
+    what is observed leaves fixed effects consistent when the effect is the same
+    for every row, but the estimate then describes the rows used).
+    """
+    key = "missing_data"
+    loss = ctx.loss
+    if loss is None:
+        return _not_run(key, "the audit was given the estimation sample only, not the rows loaded")
+    design = ctx.design
+    periods = design.periods
+    details: dict[str, Any] = {
+        "loss": loss.counts(),
+        "by_reason": loss.by_reason(),
+        "by_estimator": _by_estimator(design, loss),
+        "sample_used": {
+            "rows": design.nobs,
+            "units": len(design.unit_names),
+            "periods": int(periods.nunique()),
+            "first_period": str(periods.min()) if len(periods) else None,
+            "last_period": str(periods.max()) if len(periods) else None,
+        },
+    }
+    if not loss.dropped.any():
+        reason = "no row has a missing outcome or regressor, so no row was dropped"
+        return Diagnostic(key, "not_run", f"Not run: {reason}.", details=details, reason=reason)
+    tests = _selection_tests(ctx, loss)
+    details["tests"] = tests
+    lost = loss.sentence()
+    if not tests:
+        return Diagnostic(
+            key,
+            "caution",
+            f"{lost}; no test of whether they differ from the rows used could be fitted, so "
+            "treat the estimate as describing the rows used only.",
+            details=details,
+        )
+    m = len(tests)
+    adjusted = {k: min(1.0, m * float(t["p_value"])) for k, t in tests.items()}
+    details["p_value_adjustment"] = f"Bonferroni over {m} test(s)"
+    lowest = min(adjusted, key=lambda k: adjusted[k])
+    rejects = {k for k, p in adjusted.items() if p < ctx.alpha}
+    differs = [
+        what
+        for k, what in (
+            ("outcome_missing_on_regressors", "their regressors"),
+            ("regressor_missing_on_outcome", "their outcome"),
+        )
+        if k in rejects
+    ]
+    if "next_row_lost_in_fixed_effects" in rejects:
+        status: Status = "problem"
+        message = (
+            f"{lost}; losing a unit's next row is related to its outcome shocks, so the missing "
+            "values may bias the fixed-effects estimate (weighting the rows used by the inverse "
+            "of their chance of being observed is one remedy)."
+        )
+    elif differs:
+        status = "caution"
+        message = (
+            f"{lost}; the dropped rows differ from the rows used in {' and '.join(differs)}, so "
+            "the estimate describes the rows used rather than every row loaded."
+        )
+    else:
+        status = "ok"
+        message = (
+            f"{lost}; the dropped rows do not differ detectably from the rows used, so the "
+            "missing values look ignorable for the estimate."
+        )
+    best = tests[lowest]
+    effect = {"rows_used_share": loss.rows_used / len(loss.unit)}
+    if "next_row_lost_in_fixed_effects" in tests:
+        effect["estimate_with_indicator"] = tests["next_row_lost_in_fixed_effects"][
+            "estimate_with_indicator"
+        ]
+    details["reference"] = best["reference"]
+    return Diagnostic(
+        key, status, message, best["statistic"], adjusted[lowest], best["df"], effect, details
+    )
+
+
+def missing_data_audit(
+    panel: pd.DataFrame,
+    design: Design,
+    models: Mapping[str, ModelResult],
+    *,
+    focus: str | None = None,
+) -> Diagnostic:
+    """The ``missing_data`` check alone (see `run_audit`).
+
+    Parameters
+    ----------
+    panel
+        The validated panel, before rows with missing values were dropped.
+    design, models, focus
+        As for `run_audit`.
+    """
+    focus = design.settings.regressors[0] if focus is None else focus
+    return _missing_data(_context(design, models, focus, panel))
+
+
 # ---------------------------------------------------------------- error structure
 
 
@@ -1034,6 +1453,21 @@ def _se_consequence(
         f"{what}, so the headline's {INFERENCE_LABELS.get(ctx.headline, ctx.headline)} "
         f"standard errors are {effect}; {remedy}."
     )
+
+
+def _bounded(
+    details: dict[str, Any], name: str, value: float, bounds: tuple[float, float], reason: str
+) -> float | None:
+    """``value`` when it lies within ``bounds``; else None, with ``reason`` in details.
+
+    A statistic outside its possible range (a correlation above one, a share
+    below zero) comes from a model that does not fit the data; it is reported as
+    not computable, never printed.
+    """
+    if np.isfinite(value) and bounds[0] <= value <= bounds[1]:
+        return value
+    details.setdefault("not_computable", {})[name] = reason
+    return None
 
 
 def _serial_correlation(ctx: _Context) -> Diagnostic:
@@ -1057,23 +1491,39 @@ def _serial_correlation(ctx: _Context) -> Diagnostic:
         return _not_run(key, f"the residual regression cannot be fitted ({exc})")
     rho = float(fit.coef[1])
     tstat, p = fit.t_test(1, null=-0.5)
-    effect: dict[str, Any] = {
-        "fd_residual_autocorrelation": rho,
-        "implied_ar1_of_errors": 1.0 + 2.0 * rho,
-        "se_ratio_cluster_to_classical": ctx.se_ratio("cluster", "classical"),
-    }
-    details = {
+    details: dict[str, Any] = {
         "reference": f"t({fit.clusters - 1})",
         "covariance": fit.test_covariance,
         "null": -0.5,
         "nobs": fit.nobs,
     }
+    # Errors u_t = phi u_(t-1) + e_t with |phi| <= 1 give differences whose
+    # autocorrelation is -(1 - phi)/2, between -1 and 0; phi = 1 + 2 rho.
+    implied = _bounded(
+        details,
+        "implied_ar1_of_errors",
+        1.0 + 2.0 * rho,
+        (-1.0, 1.0),
+        f"the differenced residuals' autocorrelation {_fmt(rho)} is not between -1 and 0, "
+        "the range errors with first-order autocorrelation give, so it implies no "
+        "autocorrelation of the errors",
+    )
+    effect: dict[str, Any] = {
+        "fd_residual_autocorrelation": rho,
+        "implied_ar1_of_errors": implied,
+        "se_ratio_cluster_to_classical": ctx.se_ratio("cluster", "classical"),
+    }
     if p < ctx.alpha:
+        size = (
+            f"implied autocorrelation {_fmt(implied)}"
+            if implied is not None
+            else f"the differenced residuals' autocorrelation is {_fmt(rho)}, against -0.5 "
+            "for independent errors"
+        )
         status, message = _se_consequence(
             ctx,
-            f"Errors are correlated over time within units (implied autocorrelation "
-            f"{_fmt(1.0 + 2.0 * rho)})",
-            "cluster by unit (or use Driscoll–Kraay)",
+            f"Errors are correlated over time within units ({size})",
+            ctx.remedy("cluster", "driscoll_kraay"),
             effect="too small" if rho > -0.5 else "too large",
         )
     else:
@@ -1201,16 +1651,23 @@ def _cross_sectional_dependence(ctx: _Context) -> Diagnostic:
     if not np.isfinite(cd.statistic):
         return _not_run(key, "no two units share a period")
     p = float(2.0 * norm_sf(abs(cd.statistic)))
-    effect = {
-        "mean_correlation": cd.mean_correlation,
-        "se_ratio_driscoll_kraay_to_cluster": ctx.se_ratio("driscoll_kraay", "cluster"),
-    }
-    details = {
+    details: dict[str, Any] = {
         "reference": "N(0, 1)",
         "pesaran_cd": cd.pesaran,
         "units": cd.units,
         "pair_periods": cd.pair_periods,
         "residuals": "fixed effects with unit effects only" if period_effects else "fixed effects",
+    }
+    effect = {
+        "mean_correlation": _bounded(
+            details,
+            "mean_correlation",
+            cd.mean_correlation,
+            (-1.0, 1.0),
+            f"the pair-weighted average {_fmt(cd.mean_correlation)} is not between -1 and 1 "
+            "(units standardised over their own periods share too few of them)",
+        ),
+        "se_ratio_driscoll_kraay_to_cluster": ctx.se_ratio("driscoll_kraay", "cluster"),
     }
     if p >= ctx.alpha:
         return Diagnostic(
@@ -1224,8 +1681,7 @@ def _cross_sectional_dependence(ctx: _Context) -> Diagnostic:
             effect,
             details,
         )
-    has_dk = "driscoll_kraay" in ctx.fe.inference
-    remedy = "compare the Driscoll–Kraay standard errors" if has_dk else "add Driscoll–Kraay"
+    remedy = ctx.remedy("driscoll_kraay")
     if period_effects:
         status: Status = "caution"
         message = (
@@ -1300,7 +1756,7 @@ def _heteroskedasticity(ctx: _Context) -> Diagnostic:
         status, message = _se_consequence(
             ctx,
             "The error variance differs across units",
-            "use heteroskedasticity-robust or clustered standard errors",
+            ctx.remedy("robust", "cluster"),
             also_handled_by="robust",
         )
     else:
@@ -1334,19 +1790,22 @@ def _few_clusters(ctx: _Context) -> Diagnostic:
         "sizes_of": str(clusters.columns[0]),
     }
     dominant = share > THRESHOLDS["dominant_cluster_share"]
+    effect: dict[str, Any] = {}
+    if g < THRESHOLDS["few_clusters"] or g < THRESHOLDS["clusters_caution"] or dominant:
+        effect = _bootstrap_effect(ctx, details)
     if g < THRESHOLDS["few_clusters"]:
         status: Status = "problem"
         message = (
             f"Only {g} clusters: cluster-robust standard errors and tests are unreliable with "
-            "so few, so judge the estimate by the wild cluster bootstrap."
+            f"so few; {_bootstrap_advice(ctx, effect, details)}."
         )
     elif g < THRESHOLDS["clusters_caution"] or dominant:
         status = "caution"
         message = (
             f"{g} clusters"
             + (f", the largest holding {share:.0%} of the rows" if dominant else "")
-            + ": cluster-robust inference may be somewhat optimistic, so compare the wild "
-            "cluster bootstrap."
+            + ": cluster-robust inference may be somewhat optimistic; "
+            + f"{_bootstrap_advice(ctx, effect, details)}."
         )
     else:
         status = "ok"
@@ -1354,10 +1813,28 @@ def _few_clusters(ctx: _Context) -> Diagnostic:
             f"{g} clusters, the largest holding {share:.0%} of the rows: enough for "
             "cluster-robust standard errors."
         )
-    effect: dict[str, Any] = {}
-    if status != "ok":
-        effect = _bootstrap_effect(ctx, details)
     return Diagnostic(key, status, message, float(g), None, None, effect, details)
+
+
+def _p_text(p: float) -> str:
+    """A p-value as text: "< 0.001" below that (a bootstrap p-value of 0 is not exact)."""
+    return "< 0.001" if p < 0.001 else f"= {_fmt(p)}"
+
+
+def _bootstrap_advice(ctx: _Context, effect: Mapping[str, Any], details: Mapping[str, Any]) -> str:
+    """What to read instead of the clustered p-value: only a bootstrap that was run."""
+    if not effect:
+        why = str(details.get("wild_bootstrap", "")).removeprefix("not run: ")
+        return f"add wild_bootstrap to inference (the audit could not run one: {why})"
+    p, cp = (_p_text(effect[k]) for k in ("wild_bootstrap_p_value", "cluster_p_value"))
+    quoted = f"p {p} for {ctx.focus} against {cp} clustered"
+    if details.get("wild_bootstrap") == "from the estimation stage":
+        return f"compare the wild cluster bootstrap of the estimates ({quoted})"
+    draws = int(THRESHOLDS["bootstrap_draws"])
+    return (
+        f"the audit's own wild cluster bootstrap ({draws} draws) gives {quoted}; add "
+        "wild_bootstrap to inference to report it beside the estimates"
+    )
 
 
 def _bootstrap_effect(ctx: _Context, details: dict[str, Any]) -> dict[str, Any]:
@@ -1562,6 +2039,7 @@ _CHECKS: dict[str, tuple[_Check, bool]] = {
     "functional_form": (_functional_form, True),
     "measurement_error": (_measurement_error, True),
     "attrition": (_attrition, True),
+    "missing_data": (_missing_data, False),
     "serial_correlation": (_serial_correlation, True),
     "cross_sectional_dependence": (_cross_sectional_dependence, True),
     "heteroskedasticity": (_heteroskedasticity, True),
@@ -1571,7 +2049,11 @@ _CHECKS: dict[str, tuple[_Check, bool]] = {
 
 
 def run_audit(
-    design: Design, models: Mapping[str, ModelResult], *, focus: str | None = None
+    design: Design,
+    models: Mapping[str, ModelResult],
+    *,
+    focus: str | None = None,
+    panel: pd.DataFrame | None = None,
 ) -> dict[str, Diagnostic]:
     """Audit the fixed-effects estimate against every threat to internal validity.
 
@@ -1584,6 +2066,9 @@ def run_audit(
         ``few_clusters`` audits ``models['fixed_effects']``.
     focus
         The headline regressor; defaults to the first configured regressor.
+    panel
+        The validated panel before rows with missing values were dropped; without
+        it ``missing_data`` is ``not_run``.
 
     Returns
     -------
@@ -1602,7 +2087,8 @@ def run_audit(
     Wooldridge (2010, §10.7.1) for strict exogeneity; Ramsey (1969) for the
     functional form; Griliches & Hausman (1986, *J. Econometrics*) for
     measurement error; Nijman & Verbeek (1992) and Wooldridge (2010, §19.9) for
-    attrition; Wooldridge (2010, §10.6.3) for serial correlation; Pesaran (2004,
+    attrition and missing values (with Wooldridge 2007, *J. Econometrics*);
+    Wooldridge (2010, §10.6.3) for serial correlation; Pesaran (2004,
     2015) for cross-sectional dependence; Greene, *Econometric Analysis*, for
     groupwise heteroskedasticity; MacKinnon, Nielsen & Webb (2023, *J.
     Econometrics*) for few and influential clusters. Wald and t tests use the
@@ -1622,7 +2108,7 @@ def run_audit(
             f"focus {focus!r} is not one of the {len(regressors)} regressors "
             f"({', '.join(regressors)})"
         )
-    ctx = _context(design, models, focus)
+    ctx = _context(design, models, focus, panel)
     out: dict[str, Diagnostic] = {}
     for key, (check, needs_fe) in _CHECKS.items():
         if needs_fe and ctx.within is None:

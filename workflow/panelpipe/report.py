@@ -27,6 +27,7 @@ from .findings import Finding  # noqa: E402
 __all__ = [
     "SCHEMA_VERSION",
     "estimates_table",
+    "headline_figures",
     "history_figure",
     "loco_figure",
     "paper_tables",
@@ -169,11 +170,52 @@ def results_document(
         "validation": {"status": status, "findings": [f.to_dict() for f in findings]},
         "models": {
             k: {kk: v for kk, v in m.to_dict().items() if kk not in {"inference", "all_params"}}
+            | _std_errors_note(m)
             for k, m in models.items()
         },
         "tests": {k: t.to_dict() for k, t in tests.items()},
         "recommendation": {"estimator": recommended, "reasons": list(reasons)},
         "diagnostics": {},
+    }
+
+
+BOOTSTRAP_SE_NOTE = (
+    "std_errors.wild_bootstrap repeats the clustered (CR1) standard error that the "
+    "bootstrap t-statistic is studentised with; the wild cluster bootstrap has no standard "
+    "error of its own: its p-values and intervals are in estimates.csv (inference "
+    "wild_bootstrap) and in the report."
+)
+
+
+def _std_errors_note(model: ModelResult) -> dict[str, Any]:
+    """A note beside ``std_errors`` when one of its tables is not what its key says."""
+    if "wild_bootstrap" not in model.inference:
+        return {}
+    return {"std_errors_note": {"wild_bootstrap": BOOTSTRAP_SE_NOTE}}
+
+
+def headline_figures(model: ModelResult, focus: str) -> dict[str, Any] | None:
+    """The recommended estimate of ``focus``, each figure labelled by what produced it.
+
+    The interval and p-value are those of the model's headline inference. Under
+    the wild cluster bootstrap, which has no standard error of its own, the
+    standard error shown is the clustered (CR1) one, labelled as such (None when
+    the model has no clustered inference).
+    """
+    if focus not in model.terms:
+        return None
+    key = model.headline_inference
+    inf = model.inference[key]
+    se_key = "cluster" if key == "wild_bootstrap" else key
+    se_inf = model.inference.get(se_key)
+    return {
+        "estimate": float(model.params[focus]),
+        "ci_low": float(inf.ci_low[focus]),
+        "ci_high": float(inf.ci_high[focus]),
+        "p_value": float(inf.p_values[focus]),
+        "inference": key,
+        "std_error": None if se_inf is None else float(se_inf.std_errors[focus]),
+        "std_error_inference": se_key,
     }
 
 
@@ -463,6 +505,7 @@ DIAGNOSTIC_LABELS = {
     "functional_form": "Functional form",
     "measurement_error": "Measurement error",
     "attrition": "Attrition and selection",
+    "missing_data": "Missing values",
     "serial_correlation": "Errors correlated within units",
     "cross_sectional_dependence": "Errors correlated across units",
     "heteroskedasticity": "Unequal error variances",
@@ -487,7 +530,61 @@ def render_html(context: Mapping[str, Any]) -> str:
     context.setdefault("max_figure_terms", MAX_FIGURE_TERMS)
     context.setdefault("estimator_labels", ESTIMATOR_LABELS)
     context.setdefault("inference_labels", INFERENCE_LABELS)
+    context.setdefault("audit_cautions", audit_cautions(context.get("diagnostics", {})))
+    # The bootstrap the estimation stage adds by itself below 30 clusters is shown too.
+    ran = {k for m in context["models"].values() for k in m.inference}
+    keys = list(context.get("inference_keys", []))
+    added = [k for k in INFERENCE_LABELS if k in ran - set(keys)]
+    context.setdefault("shown_inference", keys + added)
+    context.setdefault(
+        "used",
+        sample_used(
+            context["models"][context["recommended"]],
+            context.get("diagnostics", {}),
+            context.get("summary", {}).get("period_labels") or {},
+        ),
+    )
     return _ENV.get_template("report.html.j2").render(**context)
+
+
+def audit_cautions(diagnostics: Mapping[str, Mapping[str, Any]]) -> list[dict[str, str]]:
+    """One line per audit check that flagged something, problems first."""
+    order = {"problem": 0, "caution": 1}
+    flagged = [(k, d) for k, d in diagnostics.items() if d.get("status") in order]
+    flagged.sort(key=lambda kd: order[kd[1]["status"]])
+    return [
+        {"status": d["status"], "label": DIAGNOSTIC_LABELS.get(k, k), "message": d["message"]}
+        for k, d in flagged
+    ]
+
+
+_SAMPLE_WORDS = {"first_difference": "differences", "between": "unit means"}
+
+
+def sample_used(
+    model: ModelResult, diagnostics: Mapping[str, Any], period_labels: Mapping[str, str]
+) -> dict[str, Any]:
+    """Rows, units and periods the recommended estimate used, for the question and headline.
+
+    The periods' span comes from the missing-data check (the rows kept after
+    missing values were dropped); without it, from the loaded data.
+    """
+    details = (diagnostics.get("missing_data") or {}).get("details") or {}
+    sample = details.get("sample_used") or {}
+    loss = details.get("loss") or {}
+
+    def label(period: Any) -> Any:
+        return period_labels.get(str(period), period)
+
+    return {
+        "rows": model.nobs,
+        "what": _SAMPLE_WORDS.get(model.key, "rows"),
+        "units": model.units,
+        "periods": model.periods,
+        "first_period": label(sample["first_period"]) if sample.get("first_period") else None,
+        "last_period": label(sample["last_period"]) if sample.get("last_period") else None,
+        "rows_dropped": loss.get("rows_dropped", 0),
+    }
 
 
 def render_validation_page(context: Mapping[str, Any]) -> str:

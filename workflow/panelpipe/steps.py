@@ -161,14 +161,17 @@ def diagnose_step(settings: AnalysisSettings, panel_in: str, diagnostics_out: st
     from .diagnose import run_audit
     from .estimate import estimate_one, make_design, planned_inference
 
-    design, _ = make_design(pd.read_parquet(panel_in), settings)
+    panel = pd.read_parquet(panel_in)
+    design, _ = make_design(panel, settings)
     models = {}
     if "fixed_effects" in settings.estimators:
         inference, _ = planned_inference(design)
         fe, _ = estimate_one(design, "fixed_effects", inference)
         if fe is not None:
             models["fixed_effects"] = fe
-    audit = run_audit(design, models, focus=settings.regressors[0])
+    # The validated panel, before rows with missing values are dropped, is what
+    # the missing-data check compares the rows used with.
+    audit = run_audit(design, models, focus=settings.regressors[0], panel=panel)
     _write_json(diagnostics_out, {k: d.to_dict() for k, d in audit.items()})
 
 
@@ -277,6 +280,7 @@ def report_step(
     from .report import (
         coefficient_figure,
         estimates_table,
+        headline_figures,
         history_figure,
         loco_figure,
         paper_tables,
@@ -346,17 +350,7 @@ def report_step(
         "timings_seconds": _benchmarks(run_dir / "benchmarks"),
     }
     focus = settings.regressors[0]
-    rec = models[recommended]
-    headline = None
-    if focus in rec.terms:
-        inf = rec.inference[rec.headline_inference]
-        headline = {
-            "estimate": float(rec.params[focus]),
-            "std_error": float(inf.std_errors[focus]),
-            "ci_low": float(inf.ci_low[focus]),
-            "ci_high": float(inf.ci_high[focus]),
-            "inference": rec.headline_inference,
-        }
+    headline = headline_figures(models[recommended], focus)
     terms = list(dict.fromkeys([*settings.regressors, INTERCEPT]))
     html = render_html(
         {
