@@ -83,6 +83,7 @@ def run(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
         out[name] = {
             "html": (run_dir / "report.html").read_text(encoding="utf-8"),
             "results": json.loads((run_dir / "results.json").read_text(encoding="utf-8")),
+            "estimates": pd.read_csv(run_dir / "estimates.csv"),
         }
     return out
 
@@ -156,3 +157,12 @@ def test_the_missing_data_check_is_in_the_audit_and_results(run: dict[str, Any])
     assert "Missing values" in audit
     complete = run["complete"]["results"]["diagnostics"]["missing_data"]
     assert complete["status"] == "not_run"
+
+
+def test_estimates_csv_gives_the_bootstrap_no_standard_error(run: dict[str, Any]) -> None:
+    table = run["gappy"]["estimates"]
+    boot = table[table["inference"] == "wild_bootstrap"]
+    assert len(boot) > 0
+    assert boot["std_error"].isna().all()
+    assert boot[["ci_low", "ci_high", "p_value"]].notna().all().all()
+    assert table.loc[table["inference"] == "cluster", "std_error"].notna().all()

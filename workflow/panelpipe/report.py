@@ -53,7 +53,12 @@ _ESTIMATES_COLUMNS = [
 
 
 def estimates_table(models: Mapping[str, ModelResult]) -> pd.DataFrame:
-    """Tidy estimates: one row per model, term (regressors and intercept) and inference."""
+    """Tidy estimates: one row per model, term (regressors and intercept) and inference.
+
+    The wild cluster bootstrap gives an interval and a p-value but no standard
+    error of its own, so its rows leave ``std_error`` empty rather than repeat the
+    clustered figure under the bootstrap's name.
+    """
     rows = []
     for key, m in models.items():
         terms = [t for t in m.params.index if t in m.terms or t == INTERCEPT]
@@ -65,7 +70,7 @@ def estimates_table(models: Mapping[str, ModelResult]) -> pd.DataFrame:
                         t,
                         inf_key,
                         m.params[t],
-                        inf.std_errors[t],
+                        np.nan if inf_key == "wild_bootstrap" else inf.std_errors[t],
                         inf.ci_low[t],
                         inf.ci_high[t],
                         inf.p_values[t],
