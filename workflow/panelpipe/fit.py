@@ -30,6 +30,7 @@ __all__ = [
     "constant_within",
     "covariance",
     "demean",
+    "demean_two_way",
     "group_means",
     "group_sums",
     "least_squares",
@@ -90,15 +91,46 @@ def demean(values: FloatArray, codes: IntArray) -> FloatArray:
     return values - group_means(values, codes)[codes]
 
 
+def demean_two_way(values: FloatArray, unit: IntArray, period: IntArray) -> tuple[FloatArray, int]:
+    """``values`` with unit and period effects removed exactly, and the period effects' rank.
+
+    The unit-demeaned values are projected off the unit-demeaned period indicators
+    without forming the N x T indicator matrix: the period effects solve the T x T
+    normal equations ``(D'M_U D) d = D'M_U v``, whose matrix is
+    ``diag(n_t) - C diag(1/T_i) C'`` with ``C`` the period-by-unit counts
+    (Frisch-Waugh-Lovell; the same algebra as a regression with a dummy per unit
+    and per period). Memory O(N K + T^2), time O(N K + T^3). The rank of that matrix
+    (T minus the number of connected parts of the unit-period graph) is the number
+    of period effects the fit estimates.
+    """
+    values = np.asarray(values, dtype=np.float64)
+    g, t = int(unit.max()) + 1, int(period.max()) + 1
+    counts = scipy.sparse.csr_matrix(
+        (np.ones(len(unit)), (period, unit)), shape=(t, g)
+    )  # duplicates sum
+    per_unit = np.asarray(counts.sum(axis=0)).ravel()
+    normal = np.diag(np.asarray(counts.sum(axis=1)).ravel()) - np.asarray(
+        (counts @ scipy.sparse.diags(1.0 / per_unit) @ counts.T).todense()
+    )
+    within = demean(values, unit)
+    rhs = group_sums(within, period, t)
+    effects, _, rank, _ = np.linalg.lstsq(normal, rhs, rcond=None)
+    out: FloatArray = within - demean(effects[period], unit)
+    return out, int(rank)
+
+
 @dataclass(frozen=True)
 class Regression:
     """A least-squares fit on transformed panel data, ready for any covariance.
 
     ``y`` and ``x`` are the data as the estimator transformed them; ``time`` and
     ``rows`` give each transformed row's period code (for Driscoll-Kraay) and
-    position among the estimation sample's rows (for clusters). ``effects_df``
-    counts the effects the transformation removed (the unit effects under fixed
-    effects), which the degrees of freedom include unless clusters nest them.
+    position among the estimation sample's rows (for clusters); ``time`` holds
+    calendar ordinals, so that a period nobody has still counts as one lag.
+    ``effects_df`` counts the effects the transformation removed (the unit effects
+    under fixed effects), which the degrees of freedom include unless clusters nest
+    them; ``absorbed_df`` counts effects partialled out that every covariance counts
+    as coefficients (absorbed period effects, as their dummies would be).
     """
 
     names: tuple[str, ...]
@@ -109,6 +141,7 @@ class Regression:
     time: IntArray = field(repr=False)
     rows: IntArray = field(repr=False)
     effects_df: int = 0
+    absorbed_df: int = 0
 
     @property
     def nobs(self) -> int:
@@ -116,7 +149,7 @@ class Regression:
 
     @property
     def df_resid(self) -> int:
-        return self.nobs - self.x.shape[1] - self.effects_df
+        return self.nobs - self.x.shape[1] - self.absorbed_df - self.effects_df
 
     @cached_property
     def resid(self) -> FloatArray:
@@ -173,6 +206,7 @@ def least_squares(
     time: IntArray,
     rows: IntArray,
     effects_df: int = 0,
+    absorbed_df: int = 0,
 ) -> Regression:
     """OLS of ``y`` on ``x``: Cholesky of the column-scaled X'X, one refinement step.
 
@@ -203,7 +237,9 @@ def least_squares(
     scaled = scipy.linalg.cho_solve((factor, False), (x.T @ y) / norms)
     resid = y - x @ (scaled / norms)
     scaled = scaled + scipy.linalg.cho_solve((factor, False), (x.T @ resid) / norms)
-    return Regression(names, scaled / norms, y, x, factor * norms[None, :], time, rows, effects_df)
+    return Regression(
+        names, scaled / norms, y, x, factor * norms[None, :], time, rows, effects_df, absorbed_df
+    )
 
 
 def _cluster_meat(scores: FloatArray, codes: IntArray) -> FloatArray:
@@ -243,7 +279,7 @@ def covariance(
     effects) multiplies every kind, as linearmodels' ``debiased=True`` does.
     """
     n, k = reg.x.shape
-    extra = reg.effects_df if count_effects else 0
+    extra = (reg.effects_df if count_effects else 0) + reg.absorbed_df
     if n - k - extra <= 0:
         raise np.linalg.LinAlgError("no residual degrees of freedom")
     scale = n / (n - k - extra)
@@ -278,7 +314,10 @@ def covariance(
             raise np.linalg.LinAlgError("bandwidth not below the number of periods")
         meat = sums.T @ sums
         for lag in range(1, len(weights)):
-            cross = sums[lag:].T @ sums[:-lag]
+            # Lags count calendar periods: the pair (t, t - lag) only where both exist.
+            before = np.minimum(np.searchsorted(periods, periods - lag), len(periods) - 1)
+            pair = periods[before] == periods - lag
+            cross = sums[pair].T @ sums[before[pair]]
             meat = meat + weights[lag] * (cross + cross.T)
     else:
         raise ValueError(f"unknown covariance {kind!r}")
