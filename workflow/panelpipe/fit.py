@@ -94,29 +94,32 @@ def demean(values: FloatArray, codes: IntArray) -> FloatArray:
 def demean_two_way(values: FloatArray, unit: IntArray, period: IntArray) -> tuple[FloatArray, int]:
     """``values`` with unit and period effects removed exactly, and the period effects' rank.
 
-    The unit-demeaned values are projected off the unit-demeaned period indicators
-    without forming the N x T indicator matrix: the period effects solve the T x T
-    normal equations ``(D'M_U D) d = D'M_U v``, whose matrix is
-    ``diag(n_t) - C diag(1/T_i) C'`` with ``C`` the period-by-unit counts
+    The values are demeaned by the factor with more levels and projected off the
+    indicators of the other, so that the N x T (or N x G) indicator matrix is never
+    formed: with ``A`` the factor demeaned first and ``B`` the other, the effects
+    of ``B`` solve the normal equations ``(B'M_A B) b = B'M_A v``, whose matrix is
+    ``diag(counts of B) - C diag(1 / counts of A) C'`` with ``C`` the B-by-A counts
     (Frisch-Waugh-Lovell; the same algebra as a regression with a dummy per unit
-    and per period). Memory O(N K + T^2), time O(N K + T^3). The rank of that matrix
-    (T minus the number of connected parts of the unit-period graph) is the number
-    of period effects the fit estimates.
+    and per period). Memory O(N K + m^2), time O(N K + m^3), m = min(G, T). The
+    effects' joint rank is G + T minus the connected parts of the unit-period
+    graph; the period effects' share of it, T minus those parts, is returned.
     """
     values = np.asarray(values, dtype=np.float64)
     g, t = int(unit.max()) + 1, int(period.max()) + 1
+    first, other, n_first, n_other = (unit, period, g, t) if g >= t else (period, unit, t, g)
     counts = scipy.sparse.csr_matrix(
-        (np.ones(len(unit)), (period, unit)), shape=(t, g)
+        (np.ones(len(unit)), (other, first)), shape=(n_other, n_first)
     )  # duplicates sum
-    per_unit = np.asarray(counts.sum(axis=0)).ravel()
+    per_first = np.asarray(counts.sum(axis=0)).ravel()
     normal = np.diag(np.asarray(counts.sum(axis=1)).ravel()) - np.asarray(
-        (counts @ scipy.sparse.diags(1.0 / per_unit) @ counts.T).todense()
+        (counts @ scipy.sparse.diags(1.0 / per_first) @ counts.T).todense()
     )
-    within = demean(values, unit)
-    rhs = group_sums(within, period, t)
-    effects, _, rank, _ = np.linalg.lstsq(normal, rhs, rcond=None)
-    out: FloatArray = within - demean(effects[period], unit)
-    return out, int(rank)
+    within = demean(values, first)
+    rhs = group_sums(within, other, n_other)
+    effects, _, rank, _ = scipy.linalg.lstsq(normal, rhs, cond=1e-10, lapack_driver="gelsy")
+    out: FloatArray = within - demean(effects[other], first)
+    parts = n_other - int(rank)
+    return out, t - parts
 
 
 @dataclass(frozen=True)
