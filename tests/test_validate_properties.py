@@ -86,6 +86,8 @@ def test_valid_keys_pass_through_with_their_values(records: list) -> None:
             "too_few_units",
             "too_few_periods",
             "constant_regressor",
+            "constant_outcome",
+            "value_too_small",
             "too_few_clusters",
         }, codes
         return

@@ -15,8 +15,8 @@ import numpy as np
 import pandas as pd
 
 from .distributions import chi2_sf, f_sf
-from .estimate import MEAN_PREFIX, Design, ModelResult, period_codes
-from .fit import covariance, group_means, least_squares
+from .estimate import MEAN_PREFIX, Design, ModelResult, period_codes, period_ordinals
+from .fit import covariance, demean, group_means, least_squares
 
 __all__ = [
     "TestResult",
@@ -160,27 +160,41 @@ def mundlak_test(design: Design, fe: ModelResult) -> TestResult:
     )
 
 
+def _pooled_columns(design: Design, extra: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray, int]:
+    """y and [intercept, regressors, period dummies, extra] of a pooled regression.
+
+    With absorbed period effects everything is demeaned by period instead (the
+    intercept and the dummies are then absorbed; their count is returned).
+    """
+    y = design.y.to_numpy(dtype=float)
+    if design.absorb_periods:
+        period = period_codes(design)
+        x = demean(np.column_stack([design.x.to_numpy(), *extra]), period)
+        return demean(y, period), x, int(period.max()) + 1
+    dummies = design.period_dummies.to_numpy()
+    return y, np.column_stack([np.ones(design.nobs), design.x.to_numpy(), dummies, *extra]), 0
+
+
 def _mundlak_fit(design: Design, varying: list[str]) -> tuple[pd.Series, pd.DataFrame]:
     """Pooled OLS with unit means added, and its CR1 cluster-robust covariance."""
     unit = design.unit_codes
     means = group_means(design.x[varying].to_numpy(), unit)[unit]
     names = [
-        "_intercept",
+        *([] if design.absorb_periods else ["_intercept"]),
         *design.x.columns,
         *design.period_dummies.columns,
         *(f"{MEAN_PREFIX}{t}" for t in varying),
     ]
-    x = np.column_stack(
-        [np.ones(design.nobs), design.x.to_numpy(), design.period_dummies.to_numpy(), means]
-    )
+    y, x, absorbed = _pooled_columns(design, [means])
     keep = _independent_columns(x.T @ x)
     names = [str(names[k]) for k in keep]
     reg = least_squares(
-        design.y.to_numpy(dtype=float),
+        y,
         x[:, keep],
         tuple(names),
-        time=period_codes(design),
+        time=period_ordinals(design),
         rows=np.arange(design.nobs),
+        absorbed_df=absorbed,
     )
     clusters = design.clusters.iloc[:, 0].to_numpy()
     cov = covariance(reg, "cluster", clusters=clusters)  # CR1: no effects to count
@@ -212,10 +226,7 @@ def breusch_pagan_lm(design: Design) -> TestResult:
     """
     name = "Do units carry their own random effect? Breusch–Pagan test"
     null = "the unit effects have zero variance, so pooled OLS would do"
-    x = np.column_stack(
-        [np.ones(design.nobs), design.x.to_numpy(), design.period_dummies.to_numpy()]
-    )
-    y = design.y.to_numpy()
+    y, x, _ = _pooled_columns(design, [])
     coef, *_ = np.linalg.lstsq(x, y, rcond=None)
     e = y - x @ coef
     unit = design.unit_codes

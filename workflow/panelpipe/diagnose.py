@@ -78,6 +78,7 @@ from .estimate import (
     ModelResult,
     first_difference_rows,
     period_codes,
+    period_ordinals,
 )
 from .fit import constant_within, covariance, demean, group_sums, least_squares, ls_coefficients
 from .validate import FEW_CLUSTERS
@@ -342,10 +343,15 @@ def _ssr(y: FloatArray, X: FloatArray) -> tuple[FloatArray, FloatArray]:
 
 @dataclass(frozen=True)
 class _Index:
-    """Integer codes of the estimation sample's units, periods and clusters."""
+    """Integer codes of the estimation sample's units, periods and clusters.
+
+    ``period`` codes the observed periods 0..T-1 (for dummies); ``ordinal`` is the
+    calendar period, which "the next period" and "the previous period" follow.
+    """
 
     unit: IntArray
     period: IntArray
+    ordinal: npt.NDArray[np.int64]
     cluster: IntArray
     cluster_labels: pd.Index
     n_units: int
@@ -361,6 +367,7 @@ class _Index:
         return cls(
             design.unit_codes.astype(np.intp),
             period,
+            period_ordinals(design),
             cluster,
             labels,
             len(design.unit_names),
@@ -372,16 +379,27 @@ class _Index:
         return len(self.cluster_labels)
 
     def shifted(self, step: int) -> IntArray:
-        """Row of the same unit ``step`` periods later (earlier if negative), or -1."""
-        t = self.n_periods
-        table = np.full(self.n_units * t, -1, dtype=np.intp)
-        key = self.unit * t + self.period
-        table[key] = np.arange(len(key))
-        target = self.period + step
-        ok = (target >= 0) & (target < t)
-        out = np.full(len(key), -1, dtype=np.intp)
-        out[ok] = table[key[ok] + step]
-        return out
+        """Row of the same unit ``step`` calendar periods later (earlier if negative), or -1.
+
+        A period missing for everybody still counts as a step.
+        """
+        found, code = self._period_code(step)
+        key = self.unit.astype(np.int64) * self.n_periods + self.period
+        target = self.unit.astype(np.int64) * self.n_periods + code
+        order = np.argsort(key, kind="stable")
+        at = np.minimum(np.searchsorted(key, target, sorter=order), len(key) - 1)
+        hit = found & (key[order[at]] == target)
+        return np.where(hit, order[at], -1).astype(np.intp)
+
+    def has_period(self, step: int) -> npt.NDArray[np.bool_]:
+        """Whether the period ``step`` calendar periods from each row's is observed at all."""
+        return self._period_code(step)[0]
+
+    def _period_code(self, step: int) -> tuple[npt.NDArray[np.bool_], IntArray]:
+        levels = np.unique(self.ordinal)
+        target = self.ordinal + step
+        code = np.minimum(np.searchsorted(levels, target), max(len(levels) - 1, 0))
+        return levels[code] == target, code.astype(np.intp)
 
     @cached_property
     def period_dummies(self) -> FloatArray:
@@ -525,7 +543,15 @@ def _context(
     first_diff: _FirstDiff | None = None
     missing = fd_missing = ""
     fe = models.get("fixed_effects")
-    if fe is None:
+    if design.absorb_periods:
+        # The audit refits the fixed-effects model with period dummies as columns (and
+        # its jackknife refits them without each cluster); absorbed once over the whole
+        # sample they would not be re-estimated, so the checks are not guessed.
+        missing = (
+            f"with {index.n_periods} periods the period effects are absorbed rather than "
+            "estimated as dummies, and the audit's refits need the dummies"
+        )
+    elif fe is None:
         missing = (
             "fixed effects were not estimated, and this check audits the fixed-effects estimate"
         )
@@ -990,7 +1016,9 @@ def _attrition(ctx: _Context) -> Diagnostic:
                 "attrition to test."
             )
         return Diagnostic(key, "ok", message, details=details)
-    rows = np.flatnonzero(ix.period < t - 1)
+    # Rows whose next calendar period is observed for somebody: presence in a
+    # period nobody has says nothing about this unit.
+    rows = np.flatnonzero(ix.has_period(1))
     present = (ix.shifted(1)[rows] >= 0).astype(float)[:, None]
     parts = [
         f"{n} unit(s) {what}"

@@ -5,6 +5,14 @@ regressors it can identify, fits each estimator once through the numerical
 core in ``fit.py`` (checked against linearmodels in
 tests/test_fit_linearmodels.py) and collects coefficients, covariances,
 intervals and p-values under every inference in plain typed objects.
+
+Periods are calendar ordinals (see periods.py): the period before ``p`` is
+``p - 1`` whether or not anybody is observed in it, so first differences and
+Driscoll-Kraay lags never bridge a period missing for everybody. With more than
+`ABSORB_PERIODS` periods the period effects are absorbed (partialled out, with
+their degrees of freedom counted) instead of built as dense dummies; random
+effects and correlated random effects cannot take them that way and are left out
+with a finding.
 """
 
 from __future__ import annotations
@@ -19,12 +27,13 @@ import pandas as pd
 from .bootstrap import wild_cluster_bootstrap
 from .config import AnalysisSettings
 from .distributions import f_sf, t_ppf, t_sf
-from .findings import Finding
+from .findings import Finding, PanelpipeError
 from .fit import (
     Regression,
     constant_within,
     covariance,
     demean,
+    demean_two_way,
     group_means,
     least_squares,
     random_effects_components,
@@ -33,6 +42,7 @@ from .fit import (
 from .validate import FEW_CLUSTERS
 
 __all__ = [
+    "ABSORB_PERIODS",
     "ESTIMATOR_LABELS",
     "INFERENCE_LABELS",
     "INTERCEPT",
@@ -69,6 +79,14 @@ INFERENCE_LABELS = {
 PERIOD_PREFIX = "_period_"
 MEAN_PREFIX = "_unit_mean_"
 
+#: Above this many periods, period effects are absorbed rather than built as dummies:
+#: a dense dummy matrix costs N x T x 8 bytes (60,000 rows x 1,500 days: 720 MB per
+#: copy), while absorbing costs O(N K + T^2). Below it the dummies are kept, so that
+#: their coefficients appear in the results.
+ABSORB_PERIODS = 60
+
+_CANNOT_ABSORB = {"random_effects", "correlated_random_effects"}
+
 
 @dataclass(frozen=True)
 class Design:
@@ -83,6 +101,8 @@ class Design:
     """The unit's name (text) for each integer unit code."""
     cluster_names: Mapping[str, np.ndarray]
     """Per cluster column, the cluster's value (text) for each integer code."""
+    absorb_periods: bool = False
+    """Period effects are partialled out instead of ``period_dummies`` (many periods)."""
 
     @property
     def nobs(self) -> int:
@@ -227,7 +247,8 @@ def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design
         data[list(s.regressors)].to_numpy(dtype=float), index=index, columns=list(s.regressors)
     )
     periods = pd.Index(np.sort(data[s.period].unique()))
-    if s.period_effects and len(periods) > 1:
+    absorb = s.period_effects and len(periods) > ABSORB_PERIODS
+    if s.period_effects and 1 < len(periods) <= ABSORB_PERIODS:
         codes = pd.Categorical(data[s.period].to_numpy(), categories=periods)
         dummies = pd.get_dummies(codes, drop_first=True, dtype=float)
         dummies.columns = [f"{PERIOD_PREFIX}{p}" for p in periods[1:]]
@@ -239,17 +260,41 @@ def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design
     cluster_names = {c: np.asarray(values, dtype=object) for c, (_, values) in factorized.items()}
     findings: list[Finding] = []
     names = np.asarray(unit_names, dtype=object)
-    return Design(y, x, dummies, clusters, s, names, cluster_names), findings
+    if absorb:
+        findings.append(
+            Finding(
+                "period_effects_absorbed",
+                "info",
+                f"{len(periods)} periods: the period effects are absorbed (partialled out, "
+                "their degrees of freedom counted) rather than estimated as dummies, so "
+                "their coefficients are not reported.",
+                {"periods": len(periods)},
+            )
+        )
+    return Design(y, x, dummies, clusters, s, names, cluster_names, absorb), findings
 
 
 # ---------------------------------------------------------------- identification
 
 
 def period_codes(design: Design) -> np.ndarray:
-    """Integer period codes 0..T-1 in period order."""
+    """Integer codes 0..T-1 of the observed periods, in period order (for grouping).
+
+    Not for "the period before": consecutive codes may be years apart when a
+    period is missing for everybody; use `period_ordinals` for calendar steps.
+    """
     periods = design.periods
     levels = np.sort(periods.unique())
     return np.searchsorted(levels, periods.to_numpy()).astype(np.intp)
+
+
+def period_ordinals(design: Design) -> np.ndarray:
+    """Each row's period as its calendar ordinal (the period before ``p`` is ``p - 1``)."""
+    return np.asarray(design.periods.to_numpy(), dtype=np.int64)
+
+
+def _absorb_two_way(values: np.ndarray, design: Design) -> tuple[np.ndarray, int]:
+    return demean_two_way(values, design.unit_codes, period_codes(design))
 
 
 def _transformed(design: Design, key: str) -> np.ndarray:
@@ -261,17 +306,11 @@ def _transformed(design: Design, key: str) -> np.ndarray:
         return demean(group_means(x, unit), np.zeros(int(unit.max()) + 1, dtype=np.intp))
     if key == "first_difference":
         diff = first_differences(x, design)
-        return demean(diff, np.zeros(len(diff), dtype=np.intp))
+        rows = first_difference_rows(design)
+        groups = period_codes(design)[rows] if two_way else np.zeros(len(rows), dtype=np.intp)
+        return demean(diff, pd.factorize(groups)[0]) if len(rows) else diff
     if key == "fixed_effects":
-        out = demean(x, unit)
-        if two_way:
-            period = period_codes(design)
-            for _ in range(100):  # alternating projections for unbalanced two-way effects
-                before = out
-                out = demean(demean(out, period), unit)
-                if np.max(np.abs(out - before), initial=0.0) < 1e-10:
-                    break
-        return out
+        return _absorb_two_way(x, design)[0] if two_way else demean(x, unit)
     # pooled, random effects and the Mundlak device keep unit-level variation
     if two_way:
         return demean(x, period_codes(design))
@@ -279,14 +318,15 @@ def _transformed(design: Design, key: str) -> np.ndarray:
 
 
 def first_difference_rows(design: Design) -> np.ndarray:
-    """Positions of rows whose previous period is observed for the same unit.
+    """Positions of rows whose previous calendar period is observed for the same unit.
 
-    A gap breaks the chain: the difference across a missing period is not
-    formed, as linearmodels' first-difference estimator does.
+    A gap breaks the chain, also a period missing for everybody: the difference
+    across a missing period is not formed, as linearmodels' first-difference
+    estimator does.
     """
     unit = design.unit_codes
-    pos = period_codes(design)
-    ok = (unit[1:] == unit[:-1]) & (pos[1:] == pos[:-1] + 1)
+    t = period_ordinals(design)
+    ok = (unit[1:] == unit[:-1]) & (t[1:] == t[:-1] + 1)
     return np.flatnonzero(ok) + 1
 
 
@@ -393,6 +433,8 @@ def _columns(estimator: str, design: Design, terms: list[str]) -> tuple[list[str
         return [*terms, *period_names], np.column_stack([x, d])
     if estimator == "between":
         return [INTERCEPT, *terms], np.column_stack([const, x])
+    if design.absorb_periods:  # pooled OLS: the absorbed period effects hold the intercept
+        return list(terms), x
     names = [INTERCEPT, *terms, *period_names]
     cols = [const, x, d]
     if estimator == "correlated_random_effects":
@@ -425,35 +467,47 @@ def _fit(estimator: str, design: Design, terms: list[str]) -> _Fitted:
     Fixed effects: within transformation, period effects as dummies (so that
     with clusters that nest the units the CR1 factor counts them in K while the
     unit effects are not counted). Random effects: quasi-demeaning with
-    Swamy-Arora components. First differences: consecutive observed periods.
-    Between: OLS on unit means.
+    Swamy-Arora components. First differences: consecutive calendar periods.
+    Between: OLS on unit means. With absorbed period effects (`Design.absorb_periods`)
+    pooled OLS demeans by period, fixed effects removes both effects exactly
+    (`demean_two_way`) and first differences demean by period; the effects' rank
+    enters every covariance as coefficients would (Frisch-Waugh-Lovell: the slopes,
+    residuals and slope covariances equal those of the regression with dummies).
     """
     names, z = _columns(estimator, design, terms)
     y = design.y.to_numpy(dtype=float)
     unit = design.unit_codes
     period = period_codes(design)
+    time = period_ordinals(design)
     n_units = int(unit.max()) + 1
     rows = np.arange(design.nobs)
     nested = _nests_units(design)
+    absorb = design.absorb_periods
     stats_: dict[str, float] = {}
     if estimator == "pooled_ols":
-        reg = least_squares(y, z, tuple(names), time=period, rows=rows)
+        if absorb:
+            yp, zp, k = demean(y, period), demean(z, period), int(period.max()) + 1
+        else:
+            yp, zp, k = y, z, 0
+        reg = least_squares(yp, zp, tuple(names), time=time, rows=rows, absorbed_df=k)
         stats_["r2"] = _centered_r2(reg.ssr, y)
     elif estimator == "fixed_effects":
         yw = demean(y, unit)
+        if absorb:
+            both, k = _absorb_two_way(np.column_stack([y, z]), design)
+            yt, zt = both[:, 0], both[:, 1:]
+        else:
+            yt, zt, k = yw, demean(z, unit), 0
         reg = least_squares(
-            yw,
-            demean(z, unit),
-            tuple(names),
-            time=period,
-            rows=rows,
-            effects_df=n_units,
+            yt, zt, tuple(names), time=time, rows=rows, effects_df=n_units, absorbed_df=k
         )
         stats_["r2"] = stats_["r2_within"] = _centered_r2(reg.ssr, yw, centre=False)
         # classical F test that all unit effects are zero: pooled regression with a constant
-        ssr_pooled = least_squares(
-            y - y.mean(), z - z.mean(axis=0), tuple(names), time=period, rows=rows
-        ).ssr
+        if absorb:
+            yp, zp = demean(y, period), demean(z, period)
+        else:
+            yp, zp = y - y.mean(), z - z.mean(axis=0)
+        ssr_pooled = least_squares(yp, zp, tuple(names), time=time, rows=rows, absorbed_df=k).ssr
         df1, df2 = n_units - 1, reg.df_resid
         f = ((ssr_pooled - reg.ssr) / df1) / (reg.ssr / df2)
         stats_.update(
@@ -467,15 +521,18 @@ def _fit(estimator: str, design: Design, terms: list[str]) -> _Fitted:
         theta = comps.theta[unit]
         wy = y - theta * group_means(y, unit)[unit]
         wz = z - theta[:, None] * group_means(z, unit)[unit]
-        reg = least_squares(wy, wz, tuple(names), time=period, rows=rows)
+        reg = least_squares(wy, wz, tuple(names), time=time, rows=rows)
         stats_["r2"] = _centered_r2(reg.ssr, wy)
         stats_["sigma2_unit"] = comps.sigma2_unit
         stats_["sigma2_idiosyncratic"] = comps.sigma2_idiosyncratic
         stats_["theta_median"] = float(np.median(comps.theta))
     elif estimator == "first_difference":
         fd = first_difference_rows(design)
-        dy = y[fd] - y[fd - 1]
-        reg = least_squares(dy, z[fd] - z[fd - 1], tuple(names), time=period[fd], rows=fd)
+        dy, dz, k = y[fd] - y[fd - 1], z[fd] - z[fd - 1], 0
+        if absorb:
+            groups = pd.factorize(period[fd])[0]
+            dy, dz, k = demean(dy, groups), demean(dz, groups), int(groups.max(initial=-1)) + 1
+        reg = least_squares(dy, dz, tuple(names), time=time[fd], rows=fd, absorbed_df=k)
         stats_["r2"] = _centered_r2(reg.ssr, dy, centre=False)
     elif estimator == "between":
         ybar = group_means(y, unit)
@@ -509,13 +566,19 @@ def _reference(key: str, df_resid: float, design: Design) -> tuple[str, float]:
 
 
 def _inference(
-    key: str, params: pd.Series, cov: pd.DataFrame, df_resid: float, design: Design, level: float
+    key: str,
+    params: pd.Series,
+    cov: pd.DataFrame,
+    df_resid: float,
+    design: Design,
+    level: float,
+    absorbed: int = 0,
 ) -> InferenceResult:
     n = design.nobs
     note = ""
     if key == "cluster":
         g = cluster_count(design)
-        k = len(params)
+        k = len(params) + absorbed
         note = (
             f"CR1 small-sample factor G/(G−1)·(N−1)/(N−K) with G={g}, N={n}, K={k} "
             "(the coefficients estimated, period dummies included; unit effects nested in "
@@ -646,7 +709,9 @@ def _fit_one(
         if cov is None:
             continue
         frame = pd.DataFrame(cov, index=names, columns=names)
-        results[key] = _inference(key, params, frame, float(reg.df_resid), design, level)
+        results[key] = _inference(
+            key, params, frame, float(reg.df_resid), design, level, reg.absorbed_df
+        )
     if "wild_bootstrap" in inference:
         boot = _wild_bootstrap(estimator, design, reg, terms, level)
         if boot is not None:
@@ -673,9 +738,30 @@ def _fit_one(
 
 
 def planned_inference(design: Design) -> tuple[tuple[str, ...], list[Finding]]:
-    """The configured inference, with the wild bootstrap added below 30 clusters."""
+    """The configured inference, with the wild bootstrap added below 30 clusters.
+
+    With absorbed period effects the bootstrap is left out: its restricted fit on
+    the transformed data is exact only for effects nested in the clusters, and
+    period effects are not.
+    """
     inference = design.settings.inference
     g = cluster_count(design)
+    if design.absorb_periods and (g < FEW_CLUSTERS or "wild_bootstrap" in inference):
+        return tuple(k for k in inference if k != "wild_bootstrap"), [
+            Finding(
+                "wild_bootstrap_skipped",
+                "warning",
+                f"The wild cluster bootstrap is not run: with {design.periods.nunique()} "
+                "periods the period effects are absorbed, and resampling the transformed "
+                "data is exact only for effects nested in the clusters. "
+                + (
+                    f"With only {g} clusters the clustered standard errors are unreliable; "
+                    "read them with caution."
+                    if g < FEW_CLUSTERS
+                    else ""
+                ),
+            )
+        ]
     if g < FEW_CLUSTERS and "cluster" in inference and "wild_bootstrap" not in inference:
         return (*inference, "wild_bootstrap"), [
             Finding(
@@ -692,8 +778,44 @@ def planned_inference(design: Design) -> tuple[tuple[str, ...], list[Finding]]:
 def estimate_one(
     design: Design, estimator: str, inference: tuple[str, ...]
 ) -> tuple[ModelResult | None, list[Finding]]:
-    """Fit one estimator under ``inference``; None (with a finding) when it cannot be."""
+    """Fit one estimator under ``inference``; None (with a finding) when it cannot be.
+
+    A numerical failure of the fit (a singular matrix, an overflow, a result that
+    is not finite) becomes an ``estimator_skipped`` finding, never a crash.
+    """
     findings: list[Finding] = []
+    label = ESTIMATOR_LABELS[estimator]
+    if design.absorb_periods and estimator in _CANNOT_ABSORB:
+        findings.append(
+            Finding(
+                "estimator_skipped",
+                "warning",
+                f"{label} is not fitted: with {design.periods.nunique()} periods the "
+                f"period effects are absorbed (more than {ABSORB_PERIODS}), and its "
+                "quasi-demeaning cannot absorb them exactly. Fixed effects and pooled OLS "
+                "carry the period effects.",
+                {"estimator": estimator},
+            )
+        )
+        return None, findings
+    try:
+        with np.errstate(over="raise", divide="raise", invalid="raise"):
+            return _estimate_checked(design, estimator, inference, findings)
+    except (np.linalg.LinAlgError, FloatingPointError, ValueError, ZeroDivisionError) as exc:
+        findings.append(
+            Finding(
+                "estimator_skipped",
+                "warning",
+                f"{label} could not be fitted ({exc}); the other estimators are reported.",
+                {"estimator": estimator},
+            )
+        )
+        return None, findings
+
+
+def _estimate_checked(
+    design: Design, estimator: str, inference: tuple[str, ...], findings: list[Finding]
+) -> tuple[ModelResult | None, list[Finding]]:
     terms, omitted = identifiable(design, estimator)
     for name, reason in omitted.items():
         findings.append(
@@ -715,19 +837,10 @@ def estimate_one(
             )
         )
         return None, findings
-    try:
-        model = _fit_one(estimator, design, terms, omitted, inference, design.settings.level)
-    except np.linalg.LinAlgError as exc:
-        findings.append(
-            Finding(
-                "estimator_skipped",
-                "warning",
-                f"{ESTIMATOR_LABELS[estimator]} could not be fitted ({exc}); the other "
-                "estimators are reported.",
-                {"estimator": estimator},
-            )
-        )
-        return None, findings
+    model = _fit_one(estimator, design, terms, omitted, inference, design.settings.level)
+    values = [model.params.to_numpy()] + [i.std_errors.to_numpy() for i in model.inference.values()]
+    if not all(np.isfinite(v).all() for v in values):
+        raise np.linalg.LinAlgError("its coefficients or standard errors are not finite")
     return model, findings
 
 
@@ -762,4 +875,11 @@ def estimate_all(
         findings += more
         if model is not None:
             models[estimator] = model
+    if not models:
+        reasons = " ".join(f.message for f in findings if f.code == "estimator_skipped")
+        raise PanelpipeError(
+            f"analysis {design.settings.name!r}: no estimator could be fitted, so nothing "
+            f"is published. {reasons} Check the regressors and the data.",
+            findings,
+        )
     return models, findings

@@ -30,6 +30,7 @@ __all__ = [
     "constant_within",
     "covariance",
     "demean",
+    "demean_two_way",
     "group_means",
     "group_sums",
     "least_squares",
@@ -90,15 +91,49 @@ def demean(values: FloatArray, codes: IntArray) -> FloatArray:
     return values - group_means(values, codes)[codes]
 
 
+def demean_two_way(values: FloatArray, unit: IntArray, period: IntArray) -> tuple[FloatArray, int]:
+    """``values`` with unit and period effects removed exactly, and the period effects' rank.
+
+    The values are demeaned by the factor with more levels and projected off the
+    indicators of the other, so that the N x T (or N x G) indicator matrix is never
+    formed: with ``A`` the factor demeaned first and ``B`` the other, the effects
+    of ``B`` solve the normal equations ``(B'M_A B) b = B'M_A v``, whose matrix is
+    ``diag(counts of B) - C diag(1 / counts of A) C'`` with ``C`` the B-by-A counts
+    (Frisch-Waugh-Lovell; the same algebra as a regression with a dummy per unit
+    and per period). Memory O(N K + m^2), time O(N K + m^3), m = min(G, T). The
+    effects' joint rank is G + T minus the connected parts of the unit-period
+    graph; the period effects' share of it, T minus those parts, is returned.
+    """
+    values = np.asarray(values, dtype=np.float64)
+    g, t = int(unit.max()) + 1, int(period.max()) + 1
+    first, other, n_first, n_other = (unit, period, g, t) if g >= t else (period, unit, t, g)
+    counts = scipy.sparse.csr_matrix(
+        (np.ones(len(unit)), (other, first)), shape=(n_other, n_first)
+    )  # duplicates sum
+    per_first = np.asarray(counts.sum(axis=0)).ravel()
+    normal = np.diag(np.asarray(counts.sum(axis=1)).ravel()) - np.asarray(
+        (counts @ scipy.sparse.diags(1.0 / per_first) @ counts.T).todense()
+    )
+    within = demean(values, first)
+    rhs = group_sums(within, other, n_other)
+    effects, _, rank, _ = scipy.linalg.lstsq(normal, rhs, cond=1e-10, lapack_driver="gelsy")
+    out: FloatArray = within - demean(effects[other], first)
+    parts = n_other - int(rank)
+    return out, t - parts
+
+
 @dataclass(frozen=True)
 class Regression:
     """A least-squares fit on transformed panel data, ready for any covariance.
 
     ``y`` and ``x`` are the data as the estimator transformed them; ``time`` and
     ``rows`` give each transformed row's period code (for Driscoll-Kraay) and
-    position among the estimation sample's rows (for clusters). ``effects_df``
-    counts the effects the transformation removed (the unit effects under fixed
-    effects), which the degrees of freedom include unless clusters nest them.
+    position among the estimation sample's rows (for clusters); ``time`` holds
+    calendar ordinals, so that a period nobody has still counts as one lag.
+    ``effects_df`` counts the effects the transformation removed (the unit effects
+    under fixed effects), which the degrees of freedom include unless clusters nest
+    them; ``absorbed_df`` counts effects partialled out that every covariance counts
+    as coefficients (absorbed period effects, as their dummies would be).
     """
 
     names: tuple[str, ...]
@@ -109,6 +144,7 @@ class Regression:
     time: IntArray = field(repr=False)
     rows: IntArray = field(repr=False)
     effects_df: int = 0
+    absorbed_df: int = 0
 
     @property
     def nobs(self) -> int:
@@ -116,7 +152,7 @@ class Regression:
 
     @property
     def df_resid(self) -> int:
-        return self.nobs - self.x.shape[1] - self.effects_df
+        return self.nobs - self.x.shape[1] - self.absorbed_df - self.effects_df
 
     @cached_property
     def resid(self) -> FloatArray:
@@ -173,6 +209,7 @@ def least_squares(
     time: IntArray,
     rows: IntArray,
     effects_df: int = 0,
+    absorbed_df: int = 0,
 ) -> Regression:
     """OLS of ``y`` on ``x``: Cholesky of the column-scaled X'X, one refinement step.
 
@@ -203,7 +240,9 @@ def least_squares(
     scaled = scipy.linalg.cho_solve((factor, False), (x.T @ y) / norms)
     resid = y - x @ (scaled / norms)
     scaled = scaled + scipy.linalg.cho_solve((factor, False), (x.T @ resid) / norms)
-    return Regression(names, scaled / norms, y, x, factor * norms[None, :], time, rows, effects_df)
+    return Regression(
+        names, scaled / norms, y, x, factor * norms[None, :], time, rows, effects_df, absorbed_df
+    )
 
 
 def _cluster_meat(scores: FloatArray, codes: IntArray) -> FloatArray:
@@ -243,7 +282,7 @@ def covariance(
     effects) multiplies every kind, as linearmodels' ``debiased=True`` does.
     """
     n, k = reg.x.shape
-    extra = reg.effects_df if count_effects else 0
+    extra = (reg.effects_df if count_effects else 0) + reg.absorbed_df
     if n - k - extra <= 0:
         raise np.linalg.LinAlgError("no residual degrees of freedom")
     scale = n / (n - k - extra)
@@ -278,7 +317,10 @@ def covariance(
             raise np.linalg.LinAlgError("bandwidth not below the number of periods")
         meat = sums.T @ sums
         for lag in range(1, len(weights)):
-            cross = sums[lag:].T @ sums[:-lag]
+            # Lags count calendar periods: the pair (t, t - lag) only where both exist.
+            before = np.minimum(np.searchsorted(periods, periods - lag), len(periods) - 1)
+            pair = periods[before] == periods - lag
+            cross = sums[pair].T @ sums[before[pair]]
             meat = meat + weights[lag] * (cross + cross.T)
     else:
         raise ValueError(f"unknown covariance {kind!r}")

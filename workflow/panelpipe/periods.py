@@ -6,7 +6,16 @@ year-month text (``2021-03``). Every period becomes an integer *ordinal* on its
 detected frequency (a year is itself; a quarter is 4·year + quarter − 1; a month
 is 12·year + month − 1; dates on the first day of months or quarters or years
 take that frequency, other dates count days), so gaps are differences of
-ordinals. All work is vectorised string matching.
+ordinals, and the period after ordinal ``p`` is ``p + 1`` whether or not anybody
+is observed in it. All work is vectorised string matching.
+
+Accepted range of each form (anything else is unreadable, a ``bad_period``):
+whole numbers of at most 15 digits (``|p| < 10**15``: exact in float64, and no
+sum or difference of two of them can overflow int64); years, quarters and months
+with a four-digit year; dates that numpy's day arithmetic represents (pandas'
+1677-09-22 to 2262-04-11). A column of whole numbers reads as years when every
+value lies in 1000-2999 (`YEARS`); validation treats a column whose rows are mostly
+such years as years, and refuses the rest as typos (``20199`` among 2015-2020).
 """
 
 from __future__ import annotations
@@ -16,7 +25,13 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-__all__ = ["ParsedPeriods", "label_of", "parse_periods"]
+__all__ = ["MAX_DIGITS", "YEARS", "ParsedPeriods", "label_of", "parse_periods"]
+
+#: Whole-number periods may have at most this many digits (see the module docstring).
+MAX_DIGITS = 15
+
+#: Whole numbers in this closed range read as calendar years.
+YEARS = (1000, 2999)
 
 _FORMS = {
     "integer": r"[+-]?\d+(?:\.0+)?",
@@ -91,9 +106,12 @@ def _parse_distinct(values: pd.Series) -> ParsedPeriods:
     rows = form != ""
     t = text[rows]
     if frequency == "integer":
-        ordinal[rows] = pd.to_numeric(t).astype("int64")
+        digits = t.str.replace(r"^[+-]?0*|\.0+$", "", regex=True).str.len()
+        rows = rows & (digits <= MAX_DIGITS).reindex(values.index, fill_value=False)
+        whole = t[digits <= MAX_DIGITS].str.replace(r"\.0+$", "", regex=True)
+        ordinal[rows] = whole.astype("int64")
         numbers = ordinal[rows].astype("int64")
-        if len(numbers) and numbers.between(1000, 2999).all():
+        if len(numbers) and numbers.between(*YEARS).all():
             frequency = "year"
     elif frequency == "quarter":
         parts = t.str.extract(_FORMS["quarter"]).astype("int64")

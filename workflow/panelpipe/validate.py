@@ -10,12 +10,18 @@ Finding codes (stable): ``unit_whitespace``, ``missing_unit``, ``missing_period`
 ``gaps``, ``entry_exit``, ``singleton_units``, ``too_few_units``,
 ``too_few_periods``, ``missing_values``, ``rows_dropped``, ``rows_per_estimator``,
 ``constant_regressor``, ``time_invariant_regressor``, ``low_within_variation``,
-``too_few_clusters``, ``few_clusters``.
+``too_few_clusters``, ``few_clusters``, ``period_outlier``, ``unit_spelling``,
+``value_too_large``, ``value_too_small``, ``constant_outcome``.
+
+Every value quoted from the data (unit ids, periods, cells, file names) is shown
+with control characters escaped (`shown`), so that a terminal escape sequence in
+a delivery reaches the terminal as text.
 """
 
 from __future__ import annotations
 
 import re
+import unicodedata
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -25,9 +31,16 @@ import pandas as pd
 from .config import AnalysisSettings, SourceSpec, source_spec_of
 from .findings import Finding, Severity, worst_status
 from .ingest import LINE, SOURCE
-from .periods import label_of, parse_periods
+from .periods import MAX_DIGITS, YEARS, label_of, parse_periods
 
-__all__ = ["FEW_CLUSTERS", "LOW_WITHIN_SHARE", "ValidationResult", "validate_panel"]
+__all__ = [
+    "FEW_CLUSTERS",
+    "LOW_WITHIN_SHARE",
+    "MAGNITUDE",
+    "ValidationResult",
+    "shown",
+    "validate_panel",
+]
 
 #: Common practice, no single source: below roughly 30-50 clusters the
 #: cluster-robust standard error is unreliable.
@@ -37,7 +50,32 @@ FEW_CLUSTERS = 30
 #: little to work with and measurement error weighs more (Griliches & Hausman 1986).
 LOW_WITHIN_SHARE = 0.05
 
+#: Largest (and smallest non-zero) magnitude a model column may reach. Sandwich
+#: covariances sum squares of scores (a regressor times a residual); with both
+#: below 1e75 those fourth-order sums stay below float64's 1.8e308 for up to 1e8
+#: rows, and a column whose largest value is below 1e-75 has a coefficient
+#: variance beyond 1e150 that squares of it can no longer represent.
+MAGNITUDE = 1e75
+
+#: A period more than this many spans of the bulk of periods (10th to 90th
+#: percentile of the rows) beyond that bulk is reported as an outlier.
+OUTLIER_SPANS = 10
+
 _LISTED = 10  # how many offending rows or keys a message quotes
+
+
+def shown(value: object) -> str:
+    """``value`` as text with control characters escaped (``\\x1b``, ``\\n``).
+
+    Messages quote values from deliveries and go to terminals and logs: a raw
+    escape sequence there could recolour or rewrite what the reader sees.
+    """
+    text = str(value)
+    if text.isprintable():
+        return text
+    return "".join(
+        c if c.isprintable() else c.encode("unicode_escape").decode("ascii") for c in text
+    )
 
 
 @dataclass(frozen=True)
@@ -66,7 +104,7 @@ def _places(panel: pd.DataFrame, mask: pd.Series) -> tuple[str, list[dict[str, A
     records = [
         {"file": str(s), "line": int(n)} for s, n in zip(rows[SOURCE], rows[LINE], strict=True)
     ]
-    text = "; ".join(f"{r['file']} line {r['line']}" for r in records)
+    text = "; ".join(f"{shown(r['file'])} line {r['line']}" for r in records)
     extra = int(mask.sum()) - len(records)
     if extra > 0:
         text += f"; and {extra} more"
@@ -132,8 +170,58 @@ def _check_units(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -
                 "Fill in the value or remove the rows.",
                 col,
             )
+        _check_spellings(panel, stripped, col, out)
         changes[col] = stripped
     return panel.assign(**changes)
+
+
+def _spelling_key(values: pd.Index) -> pd.Series:
+    """What an id means: Unicode NFC form; a number without leading zeros or ``.0``."""
+    nfc = pd.Series([unicodedata.normalize("NFC", str(v)) for v in values], dtype="string")
+    return nfc.str.replace(r"^([+-]?)0*(\d+?)(?:\.0+)?$", r"\1\2", regex=True)
+
+
+def _check_spellings(panel: pd.DataFrame, ids: pd.Series, col: str, out: list[Finding]) -> None:
+    """Refuse one id written in two ways: ``007`` and ``7``, ``7`` and ``7.0``, NFC and NFD.
+
+    A spreadsheet or a typed column drops leading zeros, and text can arrive in
+    either Unicode normal form; either would silently split a unit in two, and the
+    estimators would then see two short units instead of one. Both spellings are
+    refused even within one file: ids that differ only so are ambiguous to every
+    reader and tool downstream, so genuinely distinct units need distinct ids.
+    """
+    categories = pd.Index(ids.cat.categories)
+    key = _spelling_key(categories)
+    clash = key.duplicated(keep=False).to_numpy()
+    if not clash.any():
+        return
+    codes = ids.cat.codes.to_numpy()
+    first_row = pd.Series(np.arange(len(codes))).groupby(codes).first()
+    groups = pd.Series(np.flatnonzero(clash)).groupby(key[clash].to_numpy(), sort=False)
+    parts, records = [], []
+    for _, members in list(groups)[:_LISTED]:
+        spelled = []
+        for c in members:
+            row = panel.iloc[int(first_row[c])]
+            record = {
+                "value": shown(categories[c]),
+                "file": str(row[SOURCE]),
+                "line": int(row[LINE]),
+            }
+            records.append(record)
+            spelled.append(f"{record['value']!r} ({shown(record['file'])} line {record['line']})")
+        parts.append(" and ".join(spelled))
+    out.append(
+        Finding(
+            "unit_spelling",
+            "error",
+            f"column {col!r} writes the same id in more than one way, which would count "
+            f"one unit as several: {'; '.join(parts)}. Write the ids the same way in every "
+            "delivery (same leading zeros, same Unicode form); a source's 'rename' changes "
+            "column names, not values.",
+            {"column": col, "spellings": records},
+        )
+    )
 
 
 def _check_periods(
@@ -167,20 +255,70 @@ def _check_periods(
         )
     bad = parsed.bad & ~missing
     if bad.any():
-        sample = ", ".join(repr(str(v)) for v in panel.loc[bad, s.period].head(3))
         _error(
             out,
             panel,
             bad,
             "bad_period",
-            f"have a period in column {s.period!r} that is not a whole number, a date "
-            f"(2021-03-31), a year-quarter (2021Q1) or a year-month (2021-03) (e.g. {sample})",
+            f"have a period in column {s.period!r} that is not a whole number of at most "
+            f"{MAX_DIGITS} digits, a date (2021-03-31, from 1677-09-22 to 2262-04-11), a "
+            "year-quarter (2021Q1) or a year-month (2021-03) "
+            f"(e.g. {_sample(panel.loc[bad, s.period])})",
             "Correct the periods.",
             s.period,
         )
     if missing.any() or bad.any():
         return panel, parsed.frequency
-    return panel.assign(**{s.period: parsed.ordinal.astype("int64")}), parsed.frequency
+    ordinal = parsed.ordinal.astype("int64")
+    frequency = parsed.frequency
+    far = _far_periods(ordinal)
+    in_years = ordinal.between(*YEARS)
+    if frequency == "integer" and in_years.mean() > 0.5:
+        # Mostly years: a whole number far from them and outside 1000-2999 is a typo.
+        typo = far & ~in_years
+        if typo.any():
+            _error(
+                out,
+                panel,
+                typo,
+                "bad_period",
+                f"have a period in column {s.period!r} that is no year from {YEARS[0]} to "
+                f"{YEARS[1]}, far from the other periods, which are years "
+                f"(e.g. {_sample(panel.loc[typo, s.period])}; a mistyped year?)",
+                "Correct the periods.",
+                s.period,
+            )
+            return panel, frequency
+        frequency = "year"
+    if far.any():
+        text, records = _places(panel, far)
+        labels = ", ".join(repr(label_of(int(p), frequency)) for p in pd.unique(ordinal[far])[:3])
+        out.append(
+            Finding(
+                "period_outlier",
+                "warning",
+                f"{int(far.sum())} row(s) have a period in column {s.period!r} far outside "
+                f"the span of the others (e.g. {labels}): {text}. Check that it is not a "
+                "typo; it counts as a period of its own in every estimator.",
+                {"column": s.period, "rows": records},
+            )
+        )
+    return panel.assign(**{s.period: ordinal}), frequency
+
+
+def _sample(values: pd.Series) -> str:
+    return ", ".join(repr(shown(v)) for v in values.head(3))
+
+
+def _far_periods(ordinal: pd.Series) -> pd.Series:
+    """Rows whose period lies more than `OUTLIER_SPANS` spans beyond the bulk of the rows."""
+    if ordinal.empty:
+        return pd.Series(False, index=ordinal.index)
+    values = ordinal.to_numpy()
+    low = np.quantile(values, 0.1, method="lower")
+    high = np.quantile(values, 0.9, method="higher")
+    reach = OUTLIER_SPANS * (int(high) - int(low) + 1)
+    return (ordinal < int(low) - reach) | (ordinal > int(high) + reach)
 
 
 def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> pd.DataFrame:
@@ -203,7 +341,8 @@ def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) ->
             )
         ]
         text = "; ".join(
-            f"({r['unit']}, {r['period']}) at {r['file']} line {r['line']}" for r in records
+            f"({shown(r['unit'])}, {shown(r['period'])}) at {shown(r['file'])} line {r['line']}"
+            for r in records
         )
         n_keys = int(panel.loc[within].drop_duplicates([*keys, SOURCE]).shape[0])
         out.append(
@@ -242,8 +381,9 @@ def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) ->
                 }
             )
         text = "; ".join(
-            f"({r['unit']}, {r['period']}) {r['column']}: {r['old']} → {r['new']} "
-            f"(earlier value at {r['file']} line {r['line']})"
+            f"({shown(r['unit'])}, {shown(r['period'])}) {shown(r['column'])}: "
+            f"{shown(r['old'])} → {shown(r['new'])} "
+            f"(earlier value at {shown(r['file'])} line {r['line']})"
             for r in records
         )
         out.append(
@@ -463,9 +603,8 @@ def _check_missing(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding])
     unit_codes = pd.factorize(kept[s.unit])[0]
     order = np.lexsort((kept[s.period].to_numpy(), unit_codes))
     u, t = unit_codes[order], kept[s.period].to_numpy()[order]
-    periods = np.sort(np.unique(t))
-    pos = np.searchsorted(periods, t)
-    fd = int(((u[1:] == u[:-1]) & (pos[1:] == pos[:-1] + 1)).sum())
+    # Calendar arithmetic: the period before ordinal p is p - 1, observed or not.
+    fd = int(((u[1:] == u[:-1]) & (t[1:] == t[:-1] + 1)).sum())
     counts = {
         "pooled_ols": len(kept),
         "fixed_effects": len(kept),
@@ -488,10 +627,55 @@ def _check_missing(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding])
     )
 
 
+def _check_magnitude(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> None:
+    """Refuse values whose squares or products overflow, and columns too tiny to invert."""
+    for col in dict.fromkeys((s.outcome, *s.regressors)):
+        size = panel[col].abs()
+        huge = size > MAGNITUDE
+        if huge.any():
+            _error(
+                out,
+                panel,
+                huge,
+                "value_too_large",
+                f"hold a value in column {col!r} beyond ±{MAGNITUDE:.0e}, where sums of "
+                "squares overflow",
+                "Correct the values, or express the column in larger units (thousands, "
+                "millions) so that its values stay within that bound.",
+                col,
+            )
+        elif 0.0 < size.max() < 1.0 / MAGNITUDE:
+            _error(
+                out,
+                panel,
+                size > 0.0,
+                "value_too_small",
+                f"hold the non-zero values of column {col!r}, all below {1 / MAGNITUDE:.0e} "
+                "in size, where squares underflow and the coefficient's variance overflows",
+                "Express the column in smaller units (e.g. multiply it by a power of ten) so "
+                "that its values are of ordinary size.",
+                col,
+            )
+
+
 def _check_regressors(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) -> None:
     groups = panel[s.unit]
+    outcome = panel.loc[panel[[s.outcome, *s.regressors]].notna().all(axis=1), s.outcome]
+    if outcome.nunique() < 2:
+        out.append(
+            Finding(
+                "constant_outcome",
+                "error",
+                f"the outcome {s.outcome!r} takes one value in every usable row; there is "
+                "nothing to explain. Check the column and the delivery.",
+                {"column": s.outcome},
+            )
+        )
     for col in s.regressors:
-        x = panel[col]
+        # Scaled to its largest value first, so that a regressor in tiny units is not
+        # mistaken for a constant when its variance underflows.
+        top = float(panel[col].abs().max())
+        x = panel[col] / top if np.isfinite(top) and top > 0 else panel[col]
         total = float(x.var(ddof=0)) if x.notna().sum() > 1 else 0.0
         within = float((x - x.groupby(groups).transform("mean")).var(ddof=0))
         if total == 0.0 or not np.isfinite(total):
@@ -574,6 +758,8 @@ def validate_panel(raw: pd.DataFrame, settings: AnalysisSettings) -> ValidationR
     panel = _check_units(raw, settings, findings)
     panel, frequency = _check_periods(panel, settings, findings)
     panel = _check_numeric(panel, settings, findings)
+    if not any(f.severity == "error" for f in findings):
+        _check_magnitude(panel, settings, findings)
     if any(f.severity == "error" for f in findings):
         return ValidationResult(panel, tuple(findings), {"rows": len(panel)})
     panel = _check_keys(panel, settings, findings)
