@@ -118,6 +118,13 @@ def test_a_repeated_key_names_both_lines(tmp_path: Path) -> None:
         _load_text(tmp_path, "{1: a, 0x1: b}\n")  # equal once read: YAML would keep one
 
 
+def test_an_inline_merge_keeps_safe_load_semantics(tmp_path: Path) -> None:
+    text = yaml.safe_dump(DEMO, sort_keys=False)
+    text = text.replace("  regional_jobs:\n", "  regional_jobs:\n    <<: {level: 0.9}\n")
+    assert yaml.safe_load(text)["analyses"]["regional_jobs"]["level"] == 0.95  # PyYAML
+    assert _load_text(tmp_path, text)["analyses"]["regional_jobs"]["level"] == 0.95
+
+
 def test_anchors_and_aliases_are_refused_before_expansion(tmp_path: Path) -> None:
     with pytest.raises(PanelpipeError, match=r"line 1: anchors and aliases"):
         _load_text(tmp_path, "a: &x [1]\nb: *x\n")

@@ -165,6 +165,8 @@ class _StrictLoader(yaml.SafeLoader):
     def construct_mapping(self, node: yaml.MappingNode, deep: bool = False) -> dict[Any, Any]:
         seen: dict[Any, int] = {}
         for key_node, _ in node.value:
+            if key_node.tag == "tag:yaml.org,2002:merge":
+                continue  # "<<": merged keys may be overridden, as in yaml.safe_load
             key = self.construct_object(key_node, deep=True)
             line = key_node.start_mark.line + 1
             if isinstance(key, (list, dict)):
