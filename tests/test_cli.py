@@ -84,3 +84,69 @@ def test_check_passes_on_the_demo(
     monkeypatch.chdir(REPO_ROOT)
     assert main(["check"]) == 0
     assert "regional_jobs: validation pass" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize(
+    ("stem", "expected"),
+    [
+        ("Données régionales ÉTÉ", "donnees_regionales_ete"),
+        ("数据", "panel"),
+        ("ß-Straße_2024", "ss-strasse_2024"),
+        ("x" * 300, "x" * 64),
+        ("__Jobs--2024__", "jobs--2024"),
+        ("jobs[2024]", "jobs_2024"),
+        ("²³ ⅷ", "23_viii"),
+    ],
+    ids=["accents", "no-latin", "sharp-s", "long", "edges", "glob-chars", "compatibility"],
+)
+def test_init_on_any_file_name_writes_a_config_that_loads(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, stem: str, expected: str
+) -> None:
+    from _support import HOSTILE_HEADER, hostile_rows
+    from panelpipe.config import load_config, resolve_sources
+
+    monkeypatch.chdir(tmp_path)
+    data = tmp_path / f"{stem[:200]}.csv"
+    data.write_text(HOSTILE_HEADER + hostile_rows(), encoding="utf-8")
+    out = tmp_path / "c.yaml"
+    args = ["init", data.name, "--unit", "region", "--period", "year", "--outcome", "jobs"]
+    assert main([*args, "--regressors", "grant", "-o", str(out)]) == 0
+    config = load_config(out)
+    assert list(config["analyses"]) == [expected]
+    assert resolve_sources(config["analyses"][expected]["sources"], analysis="a") == [
+        Path(data.name)
+    ]
+
+
+def test_demo_refuses_a_year_it_cannot_write(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from panelpipe.demo import main as demo_main
+
+    with pytest.raises(SystemExit) as stop:
+        demo_main([str(tmp_path), "--year", "2026"])
+    assert stop.value.code == 2
+    err = capsys.readouterr().err
+    assert "--year 2026: the simulation has the years 2011 to 2025" in err
+    assert list(tmp_path.iterdir()) == []
+    with pytest.raises(SystemExit) as stop:
+        demo_main([str(tmp_path), "--history"])
+    assert stop.value.code == 2
+    assert "--history needs --year" in capsys.readouterr().err
+
+
+def test_demo_year_error_through_the_command_line(tmp_path: Path) -> None:
+    import subprocess
+    import sys
+
+    done = subprocess.run(
+        [sys.executable, "-m", "panelpipe.demo", "deliveries", "--year", "2026"],
+        cwd=tmp_path,
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
+    assert done.returncode == 2
+    assert "Traceback" not in done.stderr
+    assert "the simulation has the years 2011 to 2025" in done.stderr
+    assert not (tmp_path / "deliveries").exists()

@@ -8,6 +8,7 @@ through unchanged.
 from __future__ import annotations
 
 import argparse
+import glob
 import json
 import os
 import subprocess
@@ -160,7 +161,7 @@ def _inspect(args: argparse.Namespace) -> int:
 
 
 def _init(args: argparse.Namespace) -> int:
-    from .survey import inspect_file
+    from .survey import analysis_name, inspect_file
 
     path = Path(args.file)
     profile = inspect_file(path, unit=args.unit, period=args.period)
@@ -175,14 +176,13 @@ def _init(args: argparse.Namespace) -> int:
             raise PanelpipeError(
                 f"{path}: column {col!r} not found; the file has {', '.join(map(repr, columns))}."
             )
-    name = "".join(ch if ch.isalnum() else "_" for ch in path.stem.lower()).strip("_") or "panel"
-    if not name[0].isalnum():
-        name = "panel_" + name
+    name = analysis_name(path.stem)
     config = {
         "output_dir": "reports",
         "analyses": {
             name: {
-                "sources": [str(path)],
+                # Sources may be globs: a file whose name has [, * or ? is written escaped.
+                "sources": [glob.escape(str(path))],
                 "unit": args.unit,
                 "period": args.period,
                 "outcome": args.outcome,

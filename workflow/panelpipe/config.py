@@ -3,6 +3,13 @@
 The JSON Schema in ``workflow/schemas/config.schema.yaml`` is the single
 definition of the keys; this module applies it (filling defaults) and adds the
 checks a schema cannot express, such as that every source file exists.
+
+A configuration steers unattended runs, so anything that could make it mean
+something other than what it says is refused: repeated keys (YAML would keep the
+last one silently), anchors and aliases (which also let a few hundred bytes
+expand to gigabytes), numbers that are not finite, and column names that the
+package uses for its own columns. Files above :data:`MAX_CONFIG_BYTES` are not
+read, and values echoed in messages are shortened.
 """
 
 from __future__ import annotations
@@ -11,7 +18,8 @@ import codecs
 import copy
 import fnmatch
 import glob
-from collections.abc import Mapping
+import math
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -22,7 +30,11 @@ import yaml
 from .findings import PanelpipeError
 
 __all__ = [
+    "KEY_COLUMN_NAMES",
+    "MAX_CONFIG_BYTES",
     "REPO_ROOT",
+    "RESERVED_COLUMNS",
+    "RESERVED_PREFIXES",
     "SCHEMA_PATH",
     "AnalysisSettings",
     "SourceSpec",
@@ -36,6 +48,36 @@ __all__ = [
 
 REPO_ROOT = Path(__file__).resolve().parents[2]
 SCHEMA_PATH = REPO_ROOT / "workflow" / "schemas" / "config.schema.yaml"
+
+MAX_CONFIG_BYTES = 1 << 20
+"""Largest configuration file read (1 MiB); real configs are a few kilobytes."""
+
+_MAX_DEPTH = 32
+"""Deepest nesting of mappings and lists accepted (real configs nest about six deep)."""
+
+_SHOWN_CHARS = 120
+"""Longest excerpt of a value quoted in a message."""
+
+_SHOWN_ERRORS = 20
+"""Most schema violations listed in one message."""
+
+RESERVED_COLUMNS: Mapping[str, str] = {
+    "_source": "the file each row came from",
+    "_line": "the line each row came from",
+    "_intercept": "the constant of every regression",
+}
+"""Column names the package gives its own columns (ingest.py and estimate.py), and why."""
+
+RESERVED_PREFIXES: Mapping[str, str] = {
+    "_period_": "the period dummies",
+    "_unit_mean_": "the unit means of the correlated random effects model",
+}
+"""Name prefixes of columns the package derives (estimate.py), and what they hold."""
+
+KEY_COLUMN_NAMES: Mapping[str, str] = {
+    name: "the table of revised cells between two runs" for name in ("column", "old", "new", "size")
+}
+"""Names the unit and period columns may not have: that table (changes.py) uses them."""
 
 
 @dataclass(frozen=True)
@@ -87,6 +129,148 @@ def _schema() -> dict[str, Any]:
     return schema
 
 
+def _cut(text: str, limit: int = _SHOWN_CHARS) -> str:
+    """``text`` cut to ``limit`` characters: a hostile value is never echoed whole."""
+    return text if len(text) <= limit else f"{text[:limit]}... ({len(text):,} characters)"
+
+
+def _short(value: Any) -> str:
+    return _cut(repr(value))
+
+
+class _Refused(yaml.YAMLError):
+    """A YAML construct a configuration may not use, at a 1-based line."""
+
+    def __init__(self, line: int, message: str) -> None:
+        super().__init__(message)
+        self.line = line
+        self.message = message
+
+
+class _StrictLoader(yaml.SafeLoader):
+    """``yaml.safe_load``'s loader, refusing repeated keys, anchors and aliases.
+
+    Aliases are refused while the document is composed, before any of it is
+    expanded, so a config of nested aliases costs nothing. No config of this tool
+    needs them: every analysis states its own keys.
+    """
+
+    def compose_node(self, parent: yaml.Node | None, index: Any) -> yaml.Node | None:
+        event = self.peek_event()
+        if isinstance(event, yaml.AliasEvent) or getattr(event, "anchor", None) is not None:
+            raise _Refused(
+                event.start_mark.line + 1,
+                "anchors and aliases (&name, *name) are not accepted in a panelpipe "
+                "configuration; write each value out where it is used.",
+            )
+        return super().compose_node(parent, index)
+
+    def construct_mapping(self, node: yaml.MappingNode, deep: bool = False) -> dict[Any, Any]:
+        seen: dict[Any, int] = {}
+        for key_node, _ in node.value:
+            if key_node.tag == "tag:yaml.org,2002:merge":
+                continue  # "<<": merged keys may be overridden, as in yaml.safe_load
+            key = self.construct_object(key_node, deep=True)
+            line = key_node.start_mark.line + 1
+            if isinstance(key, (list, dict)):
+                continue  # unhashable: the base class reports it
+            if key in seen:
+                raise _Refused(
+                    line,
+                    f"the key {_short(key)} appears twice in one mapping (lines {seen[key]} and "
+                    f"{line}); YAML would silently keep only the last. Keep one of them "
+                    "(two analyses need two different names).",
+                )
+            seen[key] = line
+        return super().construct_mapping(node, deep=deep)
+
+
+def _nodes(value: Any, where: str = "", depth: int = 0) -> Iterator[tuple[str, Any, int]]:
+    """Every value below ``value`` with its key path and depth (mappings and lists)."""
+    yield where, value, depth
+    if isinstance(value, dict):
+        items: Any = ((f"{where}.{k}" if where else str(k), v) for k, v in value.items())
+    elif isinstance(value, list):
+        items = ((f"{where}[{i}]", v) for i, v in enumerate(value))
+    else:
+        return
+    if depth >= _MAX_DEPTH:
+        return
+    for path, sub in items:
+        yield from _nodes(sub, path, depth + 1)
+
+
+def _check_values(raw: Any, origin: str) -> None:
+    """Refuse non-finite numbers, keys that are not text, and needlessly deep nesting.
+
+    A NaN compares false with every bound, so the schema alone would accept
+    ``level: .nan`` (empty intervals) or a NaN gate (switched off). The schema's
+    name rules apply to text only, so ``2024:`` or ``yes:`` as a key would pass them.
+    """
+    for where, value, depth in _nodes(raw):
+        at = _cut(where, 2 * _SHOWN_CHARS) or "(top level)"
+        if depth >= _MAX_DEPTH and isinstance(value, (dict, list)):
+            raise PanelpipeError(
+                f"{origin}: {at}: nested deeper than {_MAX_DEPTH} levels; no panelpipe "
+                "setting needs that. See config/README.md."
+            )
+        if isinstance(value, float) and not math.isfinite(value):
+            raise PanelpipeError(
+                f"{origin}: {at}: {value} is not a finite number; "
+                "write an ordinary number (see config/README.md for the allowed range)."
+            )
+        for key in value if isinstance(value, dict) else ():
+            if not isinstance(key, str):
+                raise PanelpipeError(
+                    f"{origin}: {at}: the key {_short(key)} is not text; quote it "
+                    f'("{key}": ...) if it is meant as a name.'
+                )
+
+
+def _whole_number(checker: Any, instance: Any) -> bool:
+    # Draft 7 counts 9999.0 as an integer; a count written with a decimal point is
+    # more likely a mistake, and code that uses it as a count would fail later.
+    return isinstance(instance, int) and not isinstance(instance, bool)
+
+
+_Validator = jsonschema.validators.extend(
+    jsonschema.Draft7Validator,
+    type_checker=jsonschema.Draft7Validator.TYPE_CHECKER.redefine("integer", _whole_number),
+)
+
+
+def _reserved_column(key: str, column: str) -> str | None:
+    """Why ``column`` may not be used as the ``key`` column, or None when it may."""
+    if column in RESERVED_COLUMNS:
+        return RESERVED_COLUMNS[column]
+    for prefix, meaning in RESERVED_PREFIXES.items():
+        if column.startswith(prefix):
+            return f"{meaning} are named {prefix}..."
+    if key in ("unit", "period") and column in KEY_COLUMN_NAMES:
+        return KEY_COLUMN_NAMES[column]
+    return None
+
+
+def _check_columns(settings: AnalysisSettings, origin: str) -> None:
+    """Refuse column names that collide with the package's own columns."""
+    named = [
+        ("unit", settings.unit),
+        ("period", settings.period),
+        ("outcome", settings.outcome),
+        *(("regressors", c) for c in settings.regressors),
+        *(("cluster_by", c) for c in settings.cluster_by),
+    ]
+    for key, column in named:
+        why = _reserved_column(key, column)
+        if why is not None:
+            raise PanelpipeError(
+                f"{origin}: analyses.{settings.name}.{key}: the column name {_short(column)} "
+                f"is taken inside panelpipe ({why}). Rename the column on reading with a "
+                "source's 'rename' option, e.g. sources: [{path: FILE, rename: "
+                f"{{{column}: new_name}}}}], and use the new name here."
+            )
+
+
 def _fill_defaults(instance: Any, schema: Mapping[str, Any], root: Mapping[str, Any]) -> None:
     """Insert the schema's defaults for absent keys, recursing into objects."""
     if "$ref" in schema:
@@ -117,16 +301,24 @@ def _key_path(error: jsonschema.ValidationError) -> str:
 
 
 def _describe(error: jsonschema.ValidationError) -> str:
-    where = _key_path(error)
+    where = _cut(_key_path(error), 2 * _SHOWN_CHARS)
+    if "propertyNames" in error.schema_path:
+        return (
+            f"{where}: analysis name {_short(error.instance)} is not a safe folder name; "
+            "use lower-case letters, digits, '_' and '-', starting with a letter or digit, "
+            "at most 64 characters"
+        )
+    message = error.message
     if error.validator == "additionalProperties":
         allowed = sorted(error.schema.get("properties", {}))
-        return f"{where}: {error.message}; allowed keys here: {', '.join(allowed)}"
-    if error.validator == "pattern" and error.schema.get("pattern", "").startswith("^[a-z0-9]"):
-        return (
-            f"{where}: analysis name {error.instance!r} is not a safe folder name; "
-            "use lower-case letters, digits, '_' and '-', starting with a letter or digit"
-        )
-    return f"{where}: {error.message}"
+        if len(message) > 2 * _SHOWN_CHARS:
+            extra = sorted(set(error.instance) - set(allowed), key=str)
+            message = f"unknown keys {', '.join(map(_short, extra[:5]))} and more"
+        return f"{where}: {message}; allowed keys here: {', '.join(allowed)}"
+    shown = repr(error.instance)
+    if len(message) > 2 * _SHOWN_CHARS and message.startswith(shown):
+        message = _cut(shown) + message[len(shown) :]  # jsonschema quotes the whole value
+    return f"{where}: {_cut(message, 4 * _SHOWN_CHARS)}"
 
 
 def validate_config(raw: Any, *, origin: str = "config") -> dict[str, Any]:
@@ -150,14 +342,18 @@ def validate_config(raw: Any, *, origin: str = "config") -> dict[str, Any]:
         Listing every violation with the key path at fault.
     """
     if not isinstance(raw, dict):
-        raise PanelpipeError(f"{origin}: the configuration must be a mapping of keys, not {raw!r}")
+        raise PanelpipeError(
+            f"{origin}: the configuration must be a mapping of keys, not {_short(raw)}"
+        )
+    _check_values(raw, origin)
     schema = _schema()
     config = copy.deepcopy(raw)
-    errors = sorted(
-        jsonschema.Draft7Validator(schema).iter_errors(config), key=lambda e: list(e.path)
-    )
+    errors = sorted(_Validator(schema).iter_errors(config), key=lambda e: [str(p) for p in e.path])
     if errors:
-        lines = "\n".join(f"  - {_describe(e)}" for e in errors)
+        lines = "\n".join(f"  - {_describe(e)}" for e in errors[:_SHOWN_ERRORS])
+        more = len(errors) - _SHOWN_ERRORS
+        if more > 0:
+            lines += f"\n  - ... and {more:,} more"
         raise PanelpipeError(
             f"{origin}: the configuration is invalid:\n{lines}\n"
             "See config/README.md for every key and its meaning."
@@ -165,6 +361,7 @@ def validate_config(raw: Any, *, origin: str = "config") -> dict[str, Any]:
     _fill_defaults(config, schema, schema)
     for name in config["analyses"]:
         settings = analysis_settings(config, name)
+        _check_columns(settings, origin)
         for key in ("unit", "period", "outcome"):
             value = getattr(settings, key)
             if value in settings.regressors:
@@ -181,16 +378,39 @@ def validate_config(raw: Any, *, origin: str = "config") -> dict[str, Any]:
 
 
 def load_config(path: str | Path) -> dict[str, Any]:
-    """Read a YAML configuration file and validate it (see `validate_config`)."""
+    """Read a YAML configuration file and validate it (see `validate_config`).
+
+    The file is read as ``yaml.safe_load`` would, except that a file above
+    :data:`MAX_CONFIG_BYTES`, a key repeated within one mapping, and anchors or
+    aliases are refused with the line at fault.
+    """
     path = Path(path)
     try:
-        text = path.read_text(encoding="utf-8")
+        with path.open("rb") as fh:
+            data = fh.read(MAX_CONFIG_BYTES + 1)
     except OSError as exc:
         raise PanelpipeError(f"{path}: cannot read the configuration ({exc.strerror}).") from exc
+    if len(data) > MAX_CONFIG_BYTES:
+        raise PanelpipeError(
+            f"{path}: larger than 1 MiB; a panelpipe configuration is a few kilobytes. "
+            "Check that this is the configuration file."
+        )
     try:
-        raw = yaml.safe_load(text)
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise PanelpipeError(
+            f"{path}: not UTF-8 text (byte {exc.start + 1}); save the configuration as UTF-8."
+        ) from exc
+    try:
+        raw = yaml.load(text, Loader=_StrictLoader)  # a SafeLoader: builds plain data only
+    except _Refused as exc:
+        raise PanelpipeError(f"{path}, line {exc.line}: {exc.message}") from exc
     except yaml.YAMLError as exc:
-        raise PanelpipeError(f"{path}: not valid YAML: {exc}") from exc
+        raise PanelpipeError(f"{path}: not valid YAML: {_cut(str(exc), 4 * _SHOWN_CHARS)}") from exc
+    except RecursionError as exc:
+        raise PanelpipeError(
+            f"{path}: nested deeper than {_MAX_DEPTH} levels; no panelpipe setting needs that."
+        ) from exc
     return validate_config(raw, origin=str(path))
 
 

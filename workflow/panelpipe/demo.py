@@ -415,6 +415,13 @@ def main(argv: Sequence[str] | None = None) -> int:
         "--history", action="store_true", help="with --year: every year up to YEAR in one file"
     )
     args = parser.parse_args(argv)
+    if args.history and args.year is None:
+        parser.error("--history needs --year (the last year of the history file)")
+    if args.year is not None and not _DEFAULT_FIRST_YEAR <= args.year <= _DEFAULT_LAST_YEAR:
+        parser.error(
+            f"--year {args.year}: the simulation has the years {_DEFAULT_FIRST_YEAR} to "
+            f"{_DEFAULT_LAST_YEAR}; give one of them."
+        )
     if args.year is not None:
         print(write_delivery(args.out_dir, args.year, history=args.history))
         return 0

@@ -6,6 +6,8 @@ candidate unit and period columns, balance, gaps, duplicates and missing values.
 
 from __future__ import annotations
 
+import re
+import unicodedata
 from pathlib import Path
 from typing import Any
 
@@ -13,7 +15,24 @@ import pandas as pd
 
 from .findings import PanelpipeError
 
-__all__ = ["inspect_file", "render_profile"]
+__all__ = ["analysis_name", "inspect_file", "render_profile"]
+
+_NAME_LENGTH = 64
+"""Longest analysis name the configuration schema accepts."""
+
+
+def analysis_name(stem: str) -> str:
+    """A safe analysis name derived from a file name (``panelpipe init``).
+
+    The result matches the schema's name rule (``[a-z0-9][a-z0-9_-]*``, at most
+    64 characters): letters are folded to ASCII where they have an ASCII form
+    (``é`` -> ``e``, ``ß`` -> ``ss``), every other character becomes ``_``, and a
+    name with nothing left is ``panel``.
+    """
+    folded = unicodedata.normalize("NFKD", stem.casefold()).encode("ascii", "ignore").decode()
+    name = re.sub(r"[^a-z0-9_-]+", "_", folded)
+    name = re.sub(r"_{2,}", "_", name).strip("_-")[:_NAME_LENGTH].rstrip("_-")
+    return name or "panel"
 
 
 def _read(path: Path) -> pd.DataFrame:
