@@ -18,9 +18,23 @@ include: "workflow/rules/estimate.smk"
 include: "workflow/rules/compare.smk"
 include: "workflow/rules/diagnose.smk"
 include: "workflow/rules/report.smk"
+include: "workflow/rules/seal.smk"
 
 
+localrules:
+    all,
+    seal,
+
+
+# No output and no log, so Snakemake runs it every time, even when nothing else is
+# to be done: it points each `latest` at the run of the current inputs once that
+# run is complete (a withdrawn delivery included).
 rule all:
     default_target: True
     input:
-        all_reports(),
+        all_sealed(),
+    params:
+        runs=RUNS,
+        output_dir=OUT,
+    script:
+        "workflow/scripts/publish.py"
