@@ -433,19 +433,22 @@ def die_with_parent(parent: int | None = None) -> None:
 
 
 def fault_point(name: str) -> None:
-    """Test hook: stop at the point ``name`` when ``PANELPIPE_FAULT`` names it.
+    """Test hook: pause at the point ``name`` when ``PANELPIPE_FAULT`` names it.
 
     The process writes its id to the file ``PANELPIPE_FAULT_MARK`` names and
-    then waits for a signal for ever, so a test can kill the run at exactly this
-    point without racing it (DEVELOPERS.md lists the points).
+    waits for SIGUSR1 (then goes on) or for a signal that ends it, so a test can
+    act at exactly this point without racing the run (DEVELOPERS.md lists the
+    points).
     """
     if os.environ.get(FAULT_ENV) != name:
         return
+    resume = {signal.SIGUSR1}
+    signal.pthread_sigmask(signal.SIG_BLOCK, resume)  # a SIGUSR1 sent early is kept
     mark = os.environ.get(FAULT_MARK_ENV)
     if mark:
         atomic_write_text(Path(mark), str(os.getpid()))
-    while True:
-        signal.pause()
+    signal.sigwait(resume)
+    signal.pthread_sigmask(signal.SIG_UNBLOCK, resume)
 
 
 def enter_step(name: str) -> None:
