@@ -26,15 +26,16 @@ localrules:
     seal,
 
 
-# No output and no log, so Snakemake runs it every time, even when nothing else is
-# to be done: it points each `latest` at the run of the current inputs once that
-# run is complete (a withdrawn delivery included).
+# No output, so Snakemake runs it every time, even when nothing else is to be done:
+# it points each `latest` at the run of the current inputs once that run is
+# complete (a withdrawn delivery included).
 rule all:
     default_target: True
     input:
         all_sealed(),
+    log:
+        os.path.join(OUT, ".publish.log"),
     params:
-        runs=RUNS,
-        output_dir=OUT,
+        folders=FOLDERS,
     script:
         "workflow/scripts/publish.py"

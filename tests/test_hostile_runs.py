@@ -247,7 +247,7 @@ def test_the_lock_of_a_live_snakemake_is_never_removed(
     check()
 
 
-def test_a_second_run_in_the_same_folder_waits_for_none(
+def test_a_second_run_in_the_same_folder_stops_at_once(
     earlier_run: Checker, tmp_path: Path
 ) -> None:
     check = earlier_run()

@@ -55,14 +55,27 @@ def _config_path(given: str | None) -> Path:
     return path
 
 
-def _states(out: Path, runs: dict[str, str]) -> dict[str, str]:
+def _states(folders: dict[str, Path]) -> dict[str, str]:
     """complete / incomplete per analysis; a damaged run folder refuses the run."""
-    return {name: check.state for name, check in refuse_damaged(out, runs).items()}
+    return {name: check.state for name, check in refuse_damaged(folders).items()}
 
 
-def _published(out: Path, runs: dict[str, str]) -> dict[str, str]:
+def _interrupted(workdir: Path) -> bool:
+    """Whether Snakemake holds a mark of a job that was killed before it finished.
+
+    Snakemake marks a job's outputs as incomplete while it runs and clears the
+    mark when it ends; a mark left behind (a seal killed just after its write,
+    say) makes a plain ``snakemake`` refuse, so Snakemake is started to redo it.
+    """
+    marks = workdir / ".snakemake" / "incomplete"
+    return marks.is_dir() and any(
+        p.is_file() and p.name != "migration_underway" for p in marks.rglob("*")
+    )
+
+
+def _published(folders: dict[str, Path]) -> dict[str, str]:
     """Point ``latest`` at every complete planned run; the state of each."""
-    return {name: check.state for name, check in publish_latest(out, runs).items()}
+    return {name: check.state for name, check in publish_latest(folders).items()}
 
 
 def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
@@ -73,6 +86,7 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
     runs = {name: plan.run_id for name, plan in plans.items()}
     out = Path(config["output_dir"])
     out = out if out.is_absolute() else workdir / out
+    folders = {name: out / name / run for name, run in runs.items()}
     cmd = [
         sys.executable,
         "-m",
@@ -99,8 +113,9 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
     # Snakemake plans again when it reads the workflow; it refuses if its plan differs.
     env = {**os.environ, PLAN_ENV: json.dumps({n: p.to_dict() for n, p in plans.items()})}
     with run_lock(out), workdir_lock(workdir):
-        before = _states(out, runs)
-        if all(s == "complete" for s in before.values()) and not args.dry_run and not extra:
+        before = _states(folders)
+        settled = all(s == "complete" for s in before.values()) and not _interrupted(workdir)
+        if settled and not args.dry_run and not extra:
             # Every run folder matches its seal, and its id covers inputs, settings
             # and code: nothing can be out of date, so Snakemake is not started.
             sys.stderr.write("panelpipe: every analysis is up to date; nothing to do\n")
@@ -112,10 +127,9 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
             # The kernel kills Snakemake if this process dies, however it dies
             # (each step in turn dies with Snakemake): no orphan writes on.
             code = subprocess.call(cmd, env=env, preexec_fn=lambda: die_with_parent(parent))
-        after = before if args.dry_run else _published(out, runs)
+        after = before if args.dry_run else _published(folders)
     failed = False
-    for name, run in runs.items():
-        folder = out / name / run
+    for name, folder in folders.items():
         done = after[name] == "complete"
         if done:
             status = "unchanged" if before[name] == "complete" else "ok"
@@ -127,7 +141,7 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
                 {
                     "analysis": name,
                     "status": status,
-                    "run_id": run,
+                    "run_id": folder.name,
                     "report": str(folder / "report.html") if done else None,
                 }
             ),

@@ -248,20 +248,20 @@ def check_run(run_dir: Path) -> RunCheck:
     return RunCheck("complete")
 
 
-def refuse_damaged(output_dir: Path | str, runs: Mapping[str, str]) -> dict[str, RunCheck]:
-    """Check every planned run folder; refuse if one was changed after it completed.
+def refuse_damaged(folders: Mapping[str, Path | str]) -> dict[str, RunCheck]:
+    """Check the run folder of every analysis; refuse if one changed after it completed.
 
     Returns the check of every analysis. A damaged folder is never rewritten:
     the user moves it away and the next run redoes it.
     """
-    checks = {name: check_run(Path(output_dir) / name / run) for name, run in runs.items()}
+    checks = {name: check_run(Path(folder)) for name, folder in folders.items()}
     for name, check in checks.items():
         if check.state == "damaged":
-            folder = Path(output_dir) / name / runs[name]
+            folder = Path(folders[name])
             raise PanelpipeError(
                 f"analysis {name!r}: the run folder {folder} was changed after it completed "
                 f"({check.reason}). panelpipe never rewrites a completed run: move the folder "
-                f"out of {output_dir} to have it redone, then run again."
+                f"out of {folder.parent} to have it redone, then run again."
             )
     return checks
 
@@ -291,17 +291,17 @@ def update_latest(analysis_dir: Path, run: str) -> None:
     atomic_write_text(latest, run + "\n")
 
 
-def publish_latest(output_dir: Path | str, runs: Mapping[str, str]) -> dict[str, RunCheck]:
-    """Point each analysis's ``latest`` at its planned run if that run is complete.
+def publish_latest(folders: Mapping[str, Path | str]) -> dict[str, RunCheck]:
+    """Point each analysis's ``latest`` at its planned run folder if that run is complete.
 
-    ``runs`` maps analysis to the run id of its current inputs and settings, so
-    ``latest`` follows the inputs both ways: a new delivery and a withdrawn one.
-    An analysis whose run is not complete keeps its ``latest`` as it was.
+    ``folders`` maps analysis to the run folder of its current inputs and
+    settings, so ``latest`` follows the inputs both ways: a new delivery and a
+    withdrawn one. An analysis whose run is not complete keeps its ``latest``.
     """
-    checks = {name: check_run(Path(output_dir) / name / run) for name, run in runs.items()}
+    checks = {name: check_run(Path(folder)) for name, folder in folders.items()}
     for name, check in checks.items():
         if check.state == "complete":
-            update_latest(Path(output_dir) / name, runs[name])
+            update_latest(Path(folders[name]).parent, Path(folders[name]).name)
     return checks
 
 

@@ -14,7 +14,8 @@ try:
     PLANS = plan_runs(config)
     check_plan(PLANS, os.environ.get(PLAN_ENV))
     RUNS = {name: plan.run_id for name, plan in PLANS.items()}
-    refuse_damaged(config["output_dir"], RUNS)
+    FOLDERS = {name: os.path.join(config["output_dir"], name, run) for name, run in RUNS.items()}
+    refuse_damaged(FOLDERS)
 except PanelpipeError as err:
     sys.stderr.write(f"panelpipe: {err}\n")
     raise SystemExit(2)
@@ -34,7 +35,7 @@ wildcard_constraints:
 
 def all_sealed():
     """The seal of every planned run: it exists only once the whole run is written."""
-    return [os.path.join(OUT, name, run, SEAL) for name, run in RUNS.items()]
+    return [os.path.join(folder, SEAL) for folder in FOLDERS.values()]
 
 
 def planned_run(wildcards):

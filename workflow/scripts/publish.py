@@ -1,9 +1,9 @@
-import sys
-
+from panelpipe.findings import PanelpipeError
 from panelpipe.runs import enter_step, publish_latest
+from panelpipe.steps import script_guard
 
 enter_step("publish")
-for name, check in publish_latest(snakemake.params.output_dir, snakemake.params.runs).items():
-    if check.state != "complete":
-        sys.stderr.write(f"panelpipe: analysis {name!r}: {check.reason}\n")
-        raise SystemExit(1)
+with script_guard(snakemake.log[0]):
+    for name, check in publish_latest(snakemake.params.folders).items():
+        if check.state != "complete":
+            raise PanelpipeError(f"analysis {name!r}: the run is not complete ({check.reason}).")
