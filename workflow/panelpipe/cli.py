@@ -60,19 +60,6 @@ def _states(folders: dict[str, Path]) -> dict[str, str]:
     return {name: check.state for name, check in refuse_damaged(folders).items()}
 
 
-def _interrupted(workdir: Path) -> bool:
-    """Whether Snakemake holds a mark of a job that was killed before it finished.
-
-    Snakemake marks a job's outputs as incomplete while it runs and clears the
-    mark when it ends; a mark left behind (a seal killed just after its write,
-    say) makes a plain ``snakemake`` refuse, so Snakemake is started to redo it.
-    """
-    marks = workdir / ".snakemake" / "incomplete"
-    return marks.is_dir() and any(
-        p.is_file() and p.name != "migration_underway" for p in marks.rglob("*")
-    )
-
-
 def _published(folders: dict[str, Path]) -> dict[str, str]:
     """Point ``latest`` at every complete planned run; the state of each."""
     return {name: check.state for name, check in publish_latest(folders).items()}
@@ -114,8 +101,7 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
     env = {**os.environ, PLAN_ENV: json.dumps({n: p.to_dict() for n, p in plans.items()})}
     with run_lock(out), workdir_lock(workdir):
         before = _states(folders)
-        settled = all(s == "complete" for s in before.values()) and not _interrupted(workdir)
-        if settled and not args.dry_run and not extra:
+        if all(s == "complete" for s in before.values()) and not args.dry_run and not extra:
             # Every run folder matches its seal, and its id covers inputs, settings
             # and code: nothing can be out of date, so Snakemake is not started.
             sys.stderr.write("panelpipe: every analysis is up to date; nothing to do\n")

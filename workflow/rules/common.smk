@@ -14,8 +14,11 @@ try:
     PLANS = plan_runs(config)
     check_plan(PLANS, os.environ.get(PLAN_ENV))
     RUNS = {name: plan.run_id for name, plan in PLANS.items()}
-    FOLDERS = {name: os.path.join(config["output_dir"], name, run) for name, run in RUNS.items()}
-    refuse_damaged(FOLDERS)
+    FOLDERS = {
+        name: os.path.join(config["output_dir"], name, run)
+        for name, run in RUNS.items()
+    }
+    CHECKS = refuse_damaged(FOLDERS)
 except PanelpipeError as err:
     sys.stderr.write(f"panelpipe: {err}\n")
     raise SystemExit(2)
@@ -34,8 +37,17 @@ wildcard_constraints:
 
 
 def all_sealed():
-    """The seal of every planned run: it exists only once the whole run is written."""
-    return [os.path.join(folder, SEAL) for folder in FOLDERS.values()]
+    """The seal of every planned run that is not complete yet.
+
+    A complete run is left out of the jobs altogether, so no rerun trigger of
+    Snakemake (changed params after a delivery moved, a newer file, a mark of a
+    job killed after its seal was written) can ever redo it.
+    """
+    return [
+        os.path.join(folder, SEAL)
+        for name, folder in FOLDERS.items()
+        if CHECKS[name].state != "complete"
+    ]
 
 
 def planned_run(wildcards):
