@@ -18,9 +18,24 @@ include: "workflow/rules/estimate.smk"
 include: "workflow/rules/compare.smk"
 include: "workflow/rules/diagnose.smk"
 include: "workflow/rules/report.smk"
+include: "workflow/rules/seal.smk"
 
 
+localrules:
+    all,
+    seal,
+
+
+# No output, so Snakemake runs it every time, even when nothing else is to be done:
+# it points each `latest` at the run of the current inputs once that run is
+# complete (a withdrawn delivery included).
 rule all:
     default_target: True
     input:
-        all_reports(),
+        all_sealed(),
+    log:
+        os.path.join(OUT, ".publish.log"),
+    params:
+        folders=FOLDERS,
+    script:
+        "workflow/scripts/publish.py"

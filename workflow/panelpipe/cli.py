@@ -21,32 +21,60 @@ import yaml
 from .config import REPO_ROOT, analysis_settings, load_config, source_specs, validate_config
 from .findings import PanelpipeError
 from .ingest import read_panel
-from .runs import plan_runs, run_lock
+from .runs import (
+    PLAN_ENV,
+    die_with_parent,
+    live_snakemake,
+    plan_runs,
+    publish_latest,
+    refuse_damaged,
+    run_lock,
+    workdir_lock,
+)
 from .validate import validate_panel
 
 __all__ = ["main"]
 
 
-def _default_config() -> tuple[Path, Path]:
-    """The config file and the directory to run in when none is given."""
-    local = Path.cwd() / "config" / "config.yaml"
-    if local.is_file():
-        return local, Path.cwd()
-    return REPO_ROOT / "config" / "config.yaml", REPO_ROOT
+def _config_path(given: str | None) -> Path:
+    """The configuration to use: ``--config``, else ``config/config.yaml`` here.
+
+    Without ``--config`` outside a folder holding ``config/config.yaml`` the
+    command refuses rather than quietly running some other configuration. The
+    file used is named on standard error.
+    """
+    if given:
+        path = Path(given).resolve()
+    else:
+        path = Path.cwd() / "config" / "config.yaml"
+        if not path.is_file():
+            raise PanelpipeError(
+                f"no --config given and {path} does not exist; pass --config FILE (the demo "
+                f"analysis is {REPO_ROOT / 'config' / 'config.yaml'})."
+            )
+    sys.stderr.write(f"panelpipe: using the configuration {path}\n")
+    return path
+
+
+def _states(folders: dict[str, Path]) -> dict[str, str]:
+    """complete / incomplete per analysis; a damaged run folder refuses the run."""
+    return {name: check.state for name, check in refuse_damaged(folders).items()}
+
+
+def _published(folders: dict[str, Path]) -> dict[str, str]:
+    """Point ``latest`` at every complete planned run; the state of each."""
+    return {name: check.state for name, check in publish_latest(folders).items()}
 
 
 def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
-    if args.config:
-        config_path, workdir = Path(args.config).resolve(), Path.cwd()
-    else:
-        config_path, workdir = _default_config()
-    here = os.getcwd()
-    os.chdir(workdir)  # relative paths in the config resolve against the run directory
-    try:
-        config = load_config(config_path)
-        planned = plan_runs(config)
-    finally:
-        os.chdir(here)
+    config_path = _config_path(args.config)
+    workdir = Path.cwd()  # relative paths in the config resolve against it
+    config = load_config(config_path)
+    plans = plan_runs(config)
+    runs = {name: plan.run_id for name, plan in plans.items()}
+    out = Path(config["output_dir"])
+    out = out if out.is_absolute() else workdir / out
+    folders = {name: out / name / run for name, run in runs.items()}
     cmd = [
         sys.executable,
         "-m",
@@ -70,66 +98,78 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
 
         cmd += ["--resources", f"mem_mb={int(psutil.virtual_memory().total / 2**20 * 0.8)}"]
     cmd.extend(extra)
-    out = Path(config["output_dir"])
-    out = out if out.is_absolute() else workdir / out
-    existed = {name: (out / name / run / "report.html").is_file() for name, run in planned.items()}
-    with run_lock(out):
-        _clear_stale_snakemake_lock(workdir)
-        if all(existed.values()) and not args.dry_run and not extra:
-            # Every run folder is complete and protected, and its id covers inputs,
-            # settings and code: nothing can be out of date, so Snakemake is not started.
+    # Snakemake plans again when it reads the workflow; it refuses if its plan differs.
+    env = {**os.environ, PLAN_ENV: json.dumps({n: p.to_dict() for n, p in plans.items()})}
+    with run_lock(out), workdir_lock(workdir):
+        before = _states(folders)
+        if all(s == "complete" for s in before.values()) and not args.dry_run and not extra:
+            # Every run folder matches its seal, and its id covers inputs, settings
+            # and code: nothing can be out of date, so Snakemake is not started.
             sys.stderr.write("panelpipe: every analysis is up to date; nothing to do\n")
             code = 0
         else:
-            code = subprocess.call(cmd)
-    for name, run in planned.items():
-        folder = out / name / run
-        done = (folder / "report.html").is_file()
-        if args.dry_run:
-            status = "planned"
-        elif done:
-            status = "unchanged" if existed[name] else "ok"
+            if not args.dry_run:
+                _clear_stale_snakemake_lock(workdir)
+            parent = os.getpid()
+            # The kernel kills Snakemake if this process dies, however it dies
+            # (each step in turn dies with Snakemake): no orphan writes on.
+            code = subprocess.call(cmd, env=env, preexec_fn=lambda: die_with_parent(parent))
+        after = before if args.dry_run else _published(folders)
+    failed = False
+    for name, folder in folders.items():
+        done = after[name] == "complete"
+        if done:
+            status = "unchanged" if before[name] == "complete" else "ok"
         else:
-            status = "failed"
+            status = "planned" if args.dry_run else "failed"
+            failed = failed or not args.dry_run
         print(
             json.dumps(
                 {
                     "analysis": name,
                     "status": status,
-                    "run_id": run,
+                    "run_id": folder.name,
                     "report": str(folder / "report.html") if done else None,
                 }
             ),
             flush=True,
         )
-    if code != 0:
+    if code != 0 or failed:
         sys.stderr.write(
             f"panelpipe: the workflow failed (Snakemake exit status {code}); the messages "
             "above name the analysis and the file at fault, and each run folder keeps its "
             "logs/ folder.\n"
         )
-    return code
+    return code or int(failed)
 
 
 def _clear_stale_snakemake_lock(workdir: Path) -> None:
     """Remove the lock of a Snakemake process that was killed.
 
-    Called while panelpipe's own lock on the output folder is held, so no other
-    panelpipe run is active; a lock left in .snakemake/locks is then stale.
-    Removing its files is what ``snakemake --unlock`` does, without parsing the
-    workflow again.
+    Called while panelpipe's own locks on the output folder and on ``workdir``
+    are held, so no other panelpipe run works here; a lock left in
+    .snakemake/locks is stale unless a Snakemake started by hand is still
+    running in ``workdir``, in which case the run stops. Removing the files is
+    what ``snakemake --unlock`` does, without parsing the workflow again.
     """
     locks = workdir / ".snakemake" / "locks"
     stale = [p for p in locks.iterdir() if p.is_file()] if locks.is_dir() else []
-    if stale:
-        sys.stderr.write("panelpipe: removing a stale Snakemake lock left by an interrupted run\n")
-        for path in stale:
-            path.unlink(missing_ok=True)
+    if not stale:
+        return
+    live = live_snakemake(workdir)
+    if live:
+        raise PanelpipeError(
+            f"Snakemake (process {', '.join(map(str, live))}) is running in {workdir} and holds "
+            "its lock there; wait for it to finish, then run again."
+        )
+    sys.stderr.write("panelpipe: removing a stale Snakemake lock left by an interrupted run\n")
+    for path in stale:
+        path.unlink(missing_ok=True)
 
 
 def _check(args: argparse.Namespace) -> int:
     """Ingest and validate every analysis without estimating: a delivery check."""
-    config = load_config(Path(args.config) if args.config else _default_config()[0])
+    config = load_config(_config_path(args.config))
     status = 0
     for name in config["analyses"]:
         settings = analysis_settings(config, name)

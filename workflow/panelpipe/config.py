@@ -19,6 +19,8 @@ import copy
 import fnmatch
 import glob
 import math
+import os
+import stat
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -41,6 +43,7 @@ __all__ = [
     "analysis_settings",
     "load_config",
     "resolve_sources",
+    "source_files",
     "source_spec_of",
     "source_specs",
     "validate_config",
@@ -440,13 +443,104 @@ def _entry_path(entry: str | Mapping[str, Any]) -> str:
     return entry if isinstance(entry, str) else str(entry["path"])
 
 
-def resolve_sources(sources: tuple[Any, ...] | list[Any], *, analysis: str) -> list[Path]:
-    """Expand globs in order and check that every source exists.
+_KINDS = (
+    (stat.S_ISDIR, "a folder"),
+    (stat.S_ISFIFO, "a named pipe"),
+    (stat.S_ISSOCK, "a socket"),
+    (stat.S_ISCHR, "a character device"),
+    (stat.S_ISBLK, "a block device"),
+)
 
-    A glob's matches are sorted by name so that yearly files stack in order.
-    Entries are paths or mappings with a ``path`` key (and reading options).
+
+def _check_regular(path: Path, pattern: str, analysis: str) -> None:
+    """Refuse anything but a regular file (or a link to one) as a source.
+
+    A folder or a dangling link would crash hashing, and a named pipe would block
+    the run for ever, so each is refused by name before any file is opened.
     """
-    return [spec.path for spec in source_specs(sources, {}, analysis=analysis)]
+    where = f"analysis {analysis!r}: the source {str(path)!r}"
+    if pattern != str(path):
+        where += f" (matched by {pattern!r})"
+    try:
+        mode = path.stat().st_mode
+    except FileNotFoundError:
+        if path.is_symlink():
+            raise PanelpipeError(
+                f"{where} is a link to {os.readlink(path)!r}, which does not exist; "
+                "restore the file it points to, or remove the link."
+            ) from None
+        raise
+    except OSError as exc:
+        raise PanelpipeError(f"{where} cannot be examined ({exc.strerror}).") from exc
+    if not stat.S_ISREG(mode):
+        kind = next((name for test, name in _KINDS if test(mode)), "not a regular file")
+        raise PanelpipeError(
+            f"{where} is {kind}; only regular files can be sources. Narrow the pattern "
+            "in 'sources' or move the entry out of the delivery folder."
+        )
+    if not os.access(path, os.R_OK):
+        raise PanelpipeError(
+            f"{where} cannot be read (permission denied); give the user running "
+            "panelpipe read access to it."
+        )
+
+
+def source_files(
+    sources: tuple[Any, ...] | list[Any], *, analysis: str
+) -> list[tuple[Path, dict[str, Any]]]:
+    """Every source file in reading order, with the options of its entry.
+
+    Globs are expanded and their matches sorted by name so that yearly files
+    stack in order. The options are the entry's keys except ``path`` (empty for
+    a plain path): everything that shapes how the file is read.
+
+    Raises
+    ------
+    PanelpipeError
+        If a path or pattern finds nothing, a match is not a regular readable
+        file, a file is not CSV or Parquet, or a file is listed twice.
+    """
+    files: list[tuple[Path, dict[str, Any]]] = []
+    for entry in sources:
+        pattern = _entry_path(entry)
+        options = {} if isinstance(entry, str) else {k: v for k, v in entry.items() if k != "path"}
+        if glob.has_magic(pattern):
+            matches = sorted(glob.glob(pattern))
+            if not matches:
+                raise PanelpipeError(
+                    f"analysis {analysis!r}: the source pattern {pattern!r} matches no file "
+                    f"(looked from {Path.cwd()}); check the path in 'sources'."
+                )
+        else:
+            if not os.path.lexists(pattern):
+                raise PanelpipeError(
+                    f"analysis {analysis!r}: the source file {pattern!r} does not exist "
+                    f"(looked from {Path.cwd()}); check the path in 'sources'."
+                )
+            matches = [pattern]
+        for match in matches:
+            _check_regular(Path(match), pattern, analysis)
+            files.append((Path(match), options))
+    suffixes = {".csv", ".parquet", ".pq", ".txt", ".tsv"}
+    for p, _ in files:
+        if p.suffix.lower() not in suffixes and not p.name.lower().endswith(".csv.gz"):
+            raise PanelpipeError(
+                f"analysis {analysis!r}: {p} is neither CSV nor Parquet "
+                "(expected a name ending in .csv, .csv.gz, .tsv, .txt or .parquet)."
+            )
+    names = [str(p) for p, _ in files]
+    repeated = sorted({n for n in names if names.count(n) > 1})
+    if repeated:
+        raise PanelpipeError(
+            f"analysis {analysis!r}: the same file is listed twice in 'sources': "
+            f"{', '.join(repeated)}."
+        )
+    return files
+
+
+def resolve_sources(sources: tuple[Any, ...] | list[Any], *, analysis: str) -> list[Path]:
+    """The source files in reading order (see `source_files`)."""
+    return [path for path, _ in source_files(sources, analysis=analysis)]
 
 
 @dataclass(frozen=True)
@@ -537,38 +631,6 @@ def source_specs(
 ) -> list[SourceSpec]:
     """Every source file with its reading options (analysis defaults, then per source)."""
     specs: list[SourceSpec] = []
-    for entry in sources:
-        pattern = _entry_path(entry)
-        kwargs = _entry_options(entry, csv)
-        if glob.has_magic(pattern):
-            matches = sorted(glob.glob(pattern))
-            if not matches:
-                raise PanelpipeError(
-                    f"analysis {analysis!r}: the source pattern {pattern!r} matches no file "
-                    f"(looked from {Path.cwd()}); check the path in 'sources'."
-                )
-            specs.extend(SourceSpec(Path(m), **kwargs) for m in matches)
-        else:
-            path = Path(pattern)
-            if not path.is_file():
-                raise PanelpipeError(
-                    f"analysis {analysis!r}: the source file {pattern!r} does not exist "
-                    f"(looked from {Path.cwd()}); check the path in 'sources'."
-                )
-            specs.append(SourceSpec(path, **kwargs))
-    suffixes = {".csv", ".parquet", ".pq", ".txt", ".tsv"}
-    for spec in specs:
-        p = spec.path
-        if p.suffix.lower() not in suffixes and not p.name.lower().endswith(".csv.gz"):
-            raise PanelpipeError(
-                f"analysis {analysis!r}: {p} is neither CSV nor Parquet "
-                "(expected a name ending in .csv, .csv.gz, .tsv, .txt or .parquet)."
-            )
-    names = [str(s.path) for s in specs]
-    repeated = sorted({n for n in names if names.count(n) > 1})
-    if repeated:
-        raise PanelpipeError(
-            f"analysis {analysis!r}: the same file is listed twice in 'sources': "
-            f"{', '.join(repeated)}."
-        )
+    for path, options in source_files(sources, analysis=analysis):
+        specs.append(SourceSpec(path, **_entry_options(options, csv)))
     return specs

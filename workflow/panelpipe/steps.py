@@ -21,10 +21,10 @@ import pandas as pd
 import yaml
 
 from . import __version__
-from .config import AnalysisSettings, source_specs
+from .config import AnalysisSettings, SourceSpec, source_specs
 from .findings import Finding, PanelpipeError
 from .ingest import read_panel
-from .runs import atomic_write_text, file_digest, update_latest
+from .runs import atomic_write_text, fault_point, file_digest, input_change
 from .validate import validate_panel
 
 if TYPE_CHECKING:
@@ -54,19 +54,48 @@ def _read_json(path: Path | str) -> Any:
     return json.loads(Path(path).read_text(encoding="utf-8"))
 
 
-def ingest_step(settings: AnalysisSettings, panel_out: str, sources_out: str) -> None:
-    """Read and stack the sources; record each file's hash and row count."""
+def _hash_as_planned(
+    name: str, specs: Sequence[SourceSpec], planned: Sequence[Sequence[str]], doing: str
+) -> list[tuple[str, str]]:
+    """The (path, sha256) of every source now; refuse if they differ from the plan."""
+    now = [(str(spec.path), file_digest(spec.path)) for spec in specs]
+    change = input_change(planned, now)
+    if change:
+        raise PanelpipeError(
+            f"analysis {name!r}: {change} while the run was {doing}. A delivery may still be "
+            "arriving: wait until it is complete, then run again. Nothing was estimated."
+        )
+    return now
+
+
+def ingest_step(
+    settings: AnalysisSettings,
+    panel_out: str,
+    sources_out: str,
+    *,
+    run: str,
+    planned: Mapping[str, Any],
+) -> None:
+    """Read and stack the sources; record each file's hash and row count.
+
+    ``planned`` is the run's plan (`RunPlan.to_dict`): the run id and the
+    (path, sha256) of every source as hashed when the run was planned. The files
+    are hashed again before and after they are read, so the panel holds exactly
+    the bytes the run id names; a file that changed refuses the run.
+    """
+    if run != planned["run_id"]:
+        raise PanelpipeError(
+            f"analysis {settings.name!r}: run {run} is not the run of the current inputs and "
+            f"settings ({planned['run_id']}); an earlier run is never redone with other data."
+        )
     specs = source_specs(settings.sources, settings.csv, analysis=settings.name)
     text = list(dict.fromkeys((settings.unit, settings.period, *settings.cluster_by)))
+    _hash_as_planned(settings.name, specs, planned["inputs"], "starting")
     panel = read_panel(specs, settings.columns, text=text)
+    now = _hash_as_planned(settings.name, specs, planned["inputs"], "reading it")
     counts = panel["_source"].value_counts(sort=False)
     sources = [
-        {
-            "path": str(spec.path),
-            "sha256": file_digest(spec.path),
-            "rows": int(counts.get(str(spec.path), 0)),
-        }
-        for spec in specs
+        {"path": path, "sha256": digest, "rows": int(counts.get(path, 0))} for path, digest in now
     ]
     Path(panel_out).parent.mkdir(parents=True, exist_ok=True)
     panel.to_parquet(panel_out, index=False)
@@ -408,8 +437,8 @@ def report_step(
     atomic_write_text(Path(outputs["latex"]), latex)
     _write_json(outputs["results"], doc)
     _write_json(outputs["manifest"], manifest)
+    fault_point("report:writing")
     atomic_write_text(Path(outputs["html"]), html)
-    update_latest(run_dir.parent, run)
 
 
 @contextlib.contextmanager

@@ -4,11 +4,21 @@ import sys
 
 from panelpipe.config import analysis_settings, resolve_sources, validate_config
 from panelpipe.findings import PanelpipeError
-from panelpipe.runs import plan_runs
+from panelpipe.runs import PLAN_ENV, SEAL, check_plan, plan_runs, refuse_damaged
 
+# The plan hashes every source once; the ingest step reads exactly those bytes or
+# refuses. A plan passed by `panelpipe run` must still hold, and a run folder that
+# was changed after it completed is never redone over.
 try:
     config = validate_config(config, origin="configuration")
-    RUNS = plan_runs(config)
+    PLANS = plan_runs(config)
+    check_plan(PLANS, os.environ.get(PLAN_ENV))
+    RUNS = {name: plan.run_id for name, plan in PLANS.items()}
+    FOLDERS = {
+        name: os.path.join(config["output_dir"], name, run)
+        for name, run in RUNS.items()
+    }
+    CHECKS = refuse_damaged(FOLDERS)
 except PanelpipeError as err:
     sys.stderr.write(f"panelpipe: {err}\n")
     raise SystemExit(2)
@@ -26,12 +36,22 @@ wildcard_constraints:
     run_id="[0-9a-f]{16}",
 
 
-def all_reports():
+def all_sealed():
+    """The seal of every planned run that is not complete yet.
+
+    A complete run is left out of the jobs altogether, so no rerun trigger of
+    Snakemake (changed params after a delivery moved, a newer file, a mark of a
+    job killed after its seal was written) can ever redo it.
+    """
     return [
-        os.path.join(OUT, name, run, leaf)
-        for name, run in RUNS.items()
-        for leaf in ("report.html", "results.json", "estimates.csv", "manifest.json")
+        os.path.join(folder, SEAL)
+        for name, folder in FOLDERS.items()
+        if CHECKS[name].state != "complete"
     ]
+
+
+def planned_run(wildcards):
+    return PLANS[wildcards.analysis].to_dict()
 
 
 def analysis_settings_of(wildcards):

@@ -13,5 +13,6 @@ rule ingest:
         mem_mb=memory_mb(6),
     params:
         settings=analysis_settings_of,
+        planned=planned_run,
     script:
         "../scripts/ingest.py"

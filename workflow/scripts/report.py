@@ -1,5 +1,7 @@
+from panelpipe.runs import enter_step
 from panelpipe.steps import report_step, script_guard
 
+enter_step("report")
 with script_guard(snakemake.log[0]):
     report_step(
         snakemake.params.settings,
