@@ -2,7 +2,12 @@
 import os
 import sys
 
-from panelpipe.config import analysis_settings, resolve_sources, validate_config
+from panelpipe.config import (
+    analysis_settings,
+    load_config,
+    resolve_sources,
+    validate_config,
+)
 from panelpipe.findings import PanelpipeError
 from panelpipe.runs import PLAN_ENV, SEAL, check_plan, plan_runs, refuse_damaged
 
@@ -10,6 +15,10 @@ from panelpipe.runs import PLAN_ENV, SEAL, check_plan, plan_runs, refuse_damaged
 # refuses. A plan passed by `panelpipe run` must still hold, and a run folder that
 # was changed after it completed is never redone over.
 try:
+    # Snakemake's own YAML reading lets a repeated key win silently and expands
+    # aliases; the files are read once more with panelpipe's strict reader.
+    for path in workflow.configfiles:
+        load_config(path)
     config = validate_config(config, origin="configuration")
     PLANS = plan_runs(config)
     check_plan(PLANS, os.environ.get(PLAN_ENV))
