@@ -10,8 +10,10 @@ from __future__ import annotations
 import json
 import sys
 from pathlib import Path
+from typing import Any
 
 import numpy as np
+import psutil
 import pytest
 
 from panelpipe import bench
@@ -49,13 +51,56 @@ def test_simulated_panel_has_the_promised_shape() -> None:
     assert np.array_equal(frame["y"].to_numpy(), again["y"].to_numpy())  # seeded
 
 
-def test_measure_sees_the_memory_a_child_holds(tmp_path: Path) -> None:
-    hold = "import time; block = b'x' * (200 << 20); time.sleep(0.5)"
-    m = bench.measure([sys.executable, "-c", hold], tmp_path, label="hold")
+def _held_until_polled(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, *, hold_mib: int = 0
+) -> list[str]:
+    """A child command that holds ``hold_mib`` MiB until a poll of `bench.measure` has seen it.
+
+    The poll itself releases the child (through a file the child waits for), so the
+    test waits on that event, never on a time tuned to a fast machine.
+    """
+    stop = tmp_path / "seen"
+    script = tmp_path / "hold.py"
+    script.write_text(
+        "import os, sys, time\n"
+        "block = b'x' * (int(sys.argv[2]) << 20)\n"
+        "deadline = time.monotonic() + 300  # a bound against a hung test, not a tuning\n"
+        "while not os.path.exists(sys.argv[1]) and time.monotonic() < deadline:\n"
+        "    time.sleep(0.01)\n",
+        encoding="utf-8",
+    )
+    real = bench._tree_rss
+
+    def spy(*args: Any, **kwargs: Any) -> tuple[int, int]:
+        total, largest = real(*args, **kwargs)
+        if total >= hold_mib << 20:
+            stop.touch()
+        return total, largest
+
+    monkeypatch.setattr(bench, "_tree_rss", spy)
+    return [sys.executable, str(script), str(stop), str(hold_mib)]
+
+
+def test_measure_sees_the_memory_a_child_holds(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    cmd = _held_until_polled(tmp_path, monkeypatch, hold_mib=200)
+    m = bench.measure(cmd, tmp_path, label="hold")
     assert m.returncode == 0
     assert m.peak_single_mib >= 200  # the kernel's high-water mark cannot miss it
-    assert m.peak_mib >= 200  # held for 0.5 s: several polls see it
+    assert m.peak_mib >= 200  # held until a poll saw it
     assert m.polls > 0
+
+
+def test_a_process_whose_command_line_cannot_be_read_is_named_from_the_command(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A poll that misses a process's name (between fork and exec, or under load)."""
+    cmd = _held_until_polled(tmp_path, monkeypatch)
+    monkeypatch.setattr(psutil.Process, "cmdline", lambda self: [])
+    m = bench.measure(cmd, tmp_path, label="hold")
+    assert m.returncode == 0
+    assert set(m.processes) == {"hold.py"}
 
 
 def test_benchmark_end_to_end_on_a_tiny_panel(tmp_path: Path) -> None:
@@ -137,3 +182,4 @@ def test_process_label_names_steps_modules_and_scripts() -> None:
     assert bench.process_label(["python", "-m", "snakemake", "--cores", "2"]) == "snakemake"
     assert bench.process_label(["python", "/tmp/x/bare.py", "p.parquet", "3"]) == "bare.py"
     assert bench.process_label(["/bin/sleep", "1"]) == "sleep"
+    assert bench.process_label([]) is None  # a zombie or a process in exec: no name to read

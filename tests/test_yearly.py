@@ -150,10 +150,11 @@ def test_two_runs_on_one_output_never_interleave(yearly: Path) -> None:
         [
             sys.executable,
             "-c",
-            "import sys, time; from pathlib import Path; from panelpipe.runs import run_lock\n"
-            "with run_lock(Path(sys.argv[1])):\n    print('held', flush=True); time.sleep(30)",
+            "import sys; from pathlib import Path; from panelpipe.runs import run_lock\n"
+            "with run_lock(Path(sys.argv[1])):\n    print('held', flush=True); sys.stdin.read()",
             str(yearly / "reports"),
         ],
+        stdin=subprocess.PIPE,  # held until the test is done with it, however slow the machine
         stdout=subprocess.PIPE,
         text=True,
     )

@@ -337,13 +337,17 @@ class Measurement:
     processes: dict[str, float] = field(default_factory=dict)
 
 
-def process_label(cmdline: Sequence[str]) -> str:
+def process_label(cmdline: Sequence[str]) -> str | None:
     """A short name for a process of the measured tree, from its command line.
 
     A Snakemake script (``.snakemake/scripts/tmpXXXX.estimate.py``) is named by
     its rule, ``python -m MODULE`` by the module, ``python FILE.py`` by the file.
+    None for an empty command line (a process that has exited but not been
+    reaped, or one caught inside exec): there is no name to read.
     """
     args = list(cmdline)
+    if not args:
+        return None
     for arg in args[1:]:
         name = Path(arg).name
         if "/.snakemake/scripts/" in arg and name.endswith(".py"):
@@ -354,16 +358,18 @@ def process_label(cmdline: Sequence[str]) -> str:
     for arg in args[1:]:
         if arg.endswith(".py"):
             return Path(arg).name
-    return Path(args[0]).name if args else "?"
+    return Path(args[0]).name
 
 
-def _tree_rss(
-    root: psutil.Process, labels: dict[int, str], peaks: dict[str, int]
-) -> tuple[int, int]:
+def _tree_rss(root: psutil.Process, root_label: str, peaks: dict[str, int]) -> tuple[int, int]:
     """Sum and maximum of the resident sizes of ``root`` and its live descendants.
 
-    ``labels`` caches each pid's `process_label`; ``peaks`` is updated with the
-    largest size seen per label.
+    ``peaks`` is updated with the largest size seen per label. The root is named
+    ``root_label``, from the command the benchmark started, since a poll can
+    catch it before its command line is readable. A descendant is named from its
+    command line on every poll: one seen between fork and exec still shows its
+    parent's, and one whose command line is empty (caught in exec or exiting)
+    is counted in the sums but under no name.
     """
     try:
         procs = [root, *root.children(recursive=True)]
@@ -373,14 +379,13 @@ def _tree_rss(
     for proc in procs:
         try:
             rss = int(proc.memory_info().rss)
-            if proc.pid not in labels:
-                labels[proc.pid] = process_label(proc.cmdline())
+            label = root_label if proc.pid == root.pid else process_label(proc.cmdline())
         except psutil.Error:  # gone between the listing and the reading
             continue
         total += rss
         largest = max(largest, rss)
-        label = labels[proc.pid]
-        peaks[label] = max(peaks.get(label, 0), rss)
+        if label is not None:
+            peaks[label] = max(peaks.get(label, 0), rss)
     return total, largest
 
 
@@ -429,7 +434,7 @@ def measure(
     logs.mkdir(parents=True, exist_ok=True)
     out_path, err_path = logs / f"{label}.out", logs / f"{label}.err"
     peak = peak_single = polls = 0
-    labels: dict[int, str] = {}
+    root_label = process_label(cmd) or label
     per_label: dict[str, int] = {}
     status: int | None = None
     rusage_maxrss_kib = 0
@@ -448,7 +453,7 @@ def measure(
                     rusage_maxrss_kib = int(usage.ru_maxrss)
                     cpu = float(usage.ru_utime + usage.ru_stime)
                     break
-                total, largest = _tree_rss(root, labels, per_label)
+                total, largest = _tree_rss(root, root_label, per_label)
                 polls += 1
                 peak, peak_single = max(peak, total), max(peak_single, largest)
                 if timeout is not None and time.perf_counter() - start > timeout:

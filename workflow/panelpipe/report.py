@@ -8,6 +8,7 @@ every user-supplied string (Jinja2 autoescaping).
 from __future__ import annotations
 
 import io
+import unicodedata
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -29,7 +30,9 @@ __all__ = [
     "estimates_table",
     "headline_figures",
     "history_figure",
+    "latex_text",
     "loco_figure",
+    "markdown_cell",
     "paper_tables",
     "recommend",
     "render_html",
@@ -229,42 +232,112 @@ def term_label(term: str) -> str:
     return "intercept" if term == INTERCEPT else term
 
 
+_LATEX_SPECIALS = {
+    "\\": r"\textbackslash{}",
+    "{": r"\{",
+    "}": r"\}",
+    "$": r"\$",
+    "&": r"\&",
+    "#": r"\#",
+    "^": r"\textasciicircum{}",
+    "_": r"\_",
+    "%": r"\%",
+    "~": r"\textasciitilde{}",
+}
+
+
+_MARKDOWN_SPECIALS = {"\\": "\\\\", "|": "\\|"}
+
+
+def _escape(text: str, specials: Mapping[str, str], hidden: str) -> str:
+    """``text`` with each special character replaced, in one pass over the characters.
+
+    White-space controls (line breaks, tabs) become spaces; a character that
+    prints nothing (a control or format character, a line or paragraph
+    separator) is shown by its code point through the format ``hidden``.
+    """
+    out = []
+    for ch in text:
+        if ch in "\t\n\r\v\f":
+            out.append(" ")
+        elif unicodedata.category(ch) in {"Cc", "Cf", "Cs", "Co", "Cn", "Zl", "Zp"}:
+            out.append(hidden.format(ord(ch)))
+        else:
+            out.append(specials.get(ch, ch))
+    return "".join(out)
+
+
+def latex_text(text: str) -> str:
+    """``text`` for LaTeX's text mode: each of its ten special characters escaped.
+
+    One pass, so the braces of an inserted command are never escaped again;
+    non-printing characters are shown as ``<U+XXXX>``.
+    """
+    return _escape(text, _LATEX_SPECIALS, r"\textless{{}}U+{:04X}\textgreater{{}}")
+
+
+def markdown_cell(text: str) -> str:
+    """``text`` for a Markdown table cell: backslashes, pipes and line breaks escaped."""
+    return _escape(text, _MARKDOWN_SPECIALS, "<U+{:04X}>")
+
+
 def paper_tables(
     models: Mapping[str, ModelResult], regressors: Sequence[str], level: float
 ) -> tuple[str, str]:
     """The estimates table for papers: Markdown and LaTeX.
 
     Estimators as columns, one row per term with the coefficient and, below it,
-    the interval under that estimator's headline inference.
+    the interval under that estimator's headline inference. Every label and
+    caption is escaped for its format, since column names come from the data.
     """
     terms = [
         t
         for t in (*regressors, INTERCEPT)
         if any(t in m.terms or (t == INTERCEPT and t in m.params.index) for m in models.values())
     ]
-    cells: dict[str, list[str]] = {}
-    for key, m in models.items():
-        inf = m.inference[m.headline_inference]
-        column = []
-        for t in terms:
+    header = [
+        f"{ESTIMATOR_LABELS[key]} ({INFERENCE_LABELS[m.headline_inference]})"
+        for key, m in models.items()
+    ]
+    rows: list[tuple[str, list[str]]] = []
+    for t in terms:
+        cells = []
+        for m in models.values():
+            inf = m.inference[m.headline_inference]
             if t in inf.std_errors.index and t in m.params.index:
-                column.append(f"{m.params[t]:.4f} [{inf.ci_low[t]:.4f}, {inf.ci_high[t]:.4f}]")
+                cells.append(f"{m.params[t]:.4f} [{inf.ci_low[t]:.4f}, {inf.ci_high[t]:.4f}]")
             else:
-                column.append("")
-        cells[f"{ESTIMATOR_LABELS[key]} ({INFERENCE_LABELS[m.headline_inference]})"] = column
-    cells_n = {k: str(m.nobs) for k, m in zip(cells, models.values(), strict=True)}
-    frame = pd.DataFrame(cells, index=[term_label(t) for t in terms])
-    frame.loc["rows used"] = pd.Series(cells_n)
-    frame.index.name = "term"
+                cells.append("")
+        rows.append((term_label(t), cells))
+    rows.append(("rows used", [str(m.nobs) for m in models.values()]))
     caption = f"Coefficients with {level:.0%} intervals in brackets."
-    markdown = frame.to_markdown() + f"\n\n{caption}\n"
-    latex = (
-        frame.style.format(escape="latex")
-        .format_index(escape="latex", axis=0)
-        .format_index(escape="latex", axis=1)
-        .to_latex(hrules=True, caption=caption)
+
+    def md_row(cells: Sequence[str]) -> str:
+        return "| " + " | ".join(markdown_cell(c) for c in cells) + " |"
+
+    markdown = "\n".join(
+        [
+            md_row(["term", *header]),
+            "|:--|" + "--:|" * len(header),
+            *(md_row([label, *cells]) for label, cells in rows),
+        ]
     )
-    return markdown, latex
+    latex = "\n".join(
+        [
+            r"\begin{table}",
+            r"\centering",
+            rf"\caption{{{latex_text(caption)}}}",
+            rf"\begin{{tabular}}{{l{'r' * len(header)}}}",
+            r"\hline",
+            " & ".join(latex_text(c) for c in ["term", *header]) + r" \\",
+            r"\hline",
+            *(" & ".join(latex_text(c) for c in [label, *cells]) + r" \\" for label, cells in rows),
+            r"\hline",
+            r"\end{tabular}",
+            r"\end{table}",
+        ]
+    )
+    return markdown + f"\n\n{markdown_cell(caption)}\n", latex + "\n"
 
 
 # ---------------------------------------------------------------- figures

@@ -19,10 +19,10 @@ import fcntl
 import hashlib
 import json
 import os
+import secrets
 import signal
 import stat
 import sys
-import tempfile
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -270,7 +270,10 @@ def atomic_write_text(path: Path, text: str) -> None:
     """Write a file so that readers see either nothing or the whole file."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    # Created with mode 0666 so that the kernel applies the user's umask, as for any
+    # file the user writes (tempfile.mkstemp would give 0600: unreadable by colleagues).
+    tmp = path.parent / f".{path.name}.{secrets.token_hex(8)}.tmp"
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_CLOEXEC, 0o666)
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             fh.write(text)

@@ -304,7 +304,7 @@ def report_step(
     config: Mapping[str, Any],
 ) -> None:
     """Assemble results.json, estimates.csv, manifest.json and report.html."""
-    from .changes import diff_runs, history, previous_run
+    from .changes import RunData, look_back
     from .estimate import INTERCEPT
     from .report import (
         coefficient_figure,
@@ -347,20 +347,16 @@ def report_step(
     table = estimates_table(models)
     created = dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat()
     run_dir = Path(outputs["html"]).parent
-    previous = previous_run(run_dir.parent, run)
-    changes = None
-    if previous is not None:
-        changes = diff_runs(
-            _read_json(previous / "results.json"),
-            pd.read_parquet(previous / "work" / "panel.parquet"),
-            doc,
-            panel,
-            settings.to_dict(),
-        )
+    # Earlier runs are only read; one that is damaged or made with other columns
+    # becomes a note in the changes, never a reason to stop this run.
+    changes, earlier = look_back(
+        run_dir.parent,
+        RunData(run, doc, settings.to_dict(), created, summary["frequency"], panel),
+    )
     doc["changes"] = changes
     doc["diagnostics"] = diagnostics
     runs = [
-        *history(run_dir.parent),
+        *earlier,
         {
             "run_id": run,
             "created": created,
