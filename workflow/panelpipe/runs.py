@@ -332,7 +332,8 @@ def _exclusive(path: Path, busy: str) -> Iterator[None]:
             fcntl.flock(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
             fh.seek(0)
-            raise PanelpipeError(busy.format(holder=fh.read().strip() or "unknown")) from None
+            # replace, not format: the message holds a path, which may hold braces
+            raise PanelpipeError(busy.replace("{holder}", fh.read().strip() or "unknown")) from None
         fh.seek(0)
         fh.truncate()
         fh.write(str(os.getpid()))
@@ -341,6 +342,18 @@ def _exclusive(path: Path, busy: str) -> Iterator[None]:
             yield
         finally:
             fcntl.flock(fh, fcntl.LOCK_UN)
+
+
+@contextlib.contextmanager
+def _folder_lock(folder: Path, name: str, busy: str, unwritable: str) -> Iterator[None]:
+    """Create ``folder`` if needed and hold the exclusive lock file ``folder/name``."""
+    with contextlib.ExitStack() as stack:
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+            stack.enter_context(_exclusive(folder / name, busy))
+        except OSError as exc:
+            raise PanelpipeError(unwritable.replace("{reason}", str(exc.strerror))) from exc
+        yield
 
 
 @contextlib.contextmanager
@@ -356,21 +369,14 @@ def run_lock(output_dir: Path) -> Iterator[None]:
             f"the output folder {output_dir} is a file; set output_dir to a folder "
             "(it is created if missing)."
         )
-    with contextlib.ExitStack() as stack:
-        try:
-            output_dir.mkdir(parents=True, exist_ok=True)
-            stack.enter_context(
-                _exclusive(
-                    output_dir / ".panelpipe.lock",
-                    f"another panelpipe run (process {{holder}}) is writing to {output_dir}; "
-                    "wait for it to finish, then run again.",
-                )
-            )
-        except OSError as exc:
-            raise PanelpipeError(
-                f"cannot write to the output folder {output_dir} ({exc.strerror}); choose a "
-                "writable output_dir or give the user running panelpipe write access to it."
-            ) from exc
+    with _folder_lock(
+        output_dir,
+        ".panelpipe.lock",
+        f"another panelpipe run (process {{holder}}) is writing to {output_dir}; "
+        "wait for it to finish, then run again.",
+        f"cannot write to the output folder {output_dir} ({{reason}}); choose a writable "
+        "output_dir or give the user running panelpipe write access to it.",
+    ):
         yield
 
 
@@ -382,22 +388,14 @@ def workdir_lock(workdir: Path) -> Iterator[None]:
     lock is held no other panelpipe run uses that folder, whatever its output
     folder, so no other panelpipe run can remove those locks.
     """
-    folder = Path(workdir) / ".snakemake"
-    with contextlib.ExitStack() as stack:
-        try:
-            folder.mkdir(parents=True, exist_ok=True)
-            stack.enter_context(
-                _exclusive(
-                    folder / "panelpipe-run.lock",
-                    f"another panelpipe run (process {{holder}}) is running in {workdir}; "
-                    "wait for it to finish, then run again.",
-                )
-            )
-        except OSError as exc:
-            raise PanelpipeError(
-                f"cannot write to {folder} ({exc.strerror}); run panelpipe from a folder the "
-                "user may write to."
-            ) from exc
+    with _folder_lock(
+        Path(workdir) / ".snakemake",
+        "panelpipe-run.lock",
+        f"another panelpipe run (process {{holder}}) is running in {workdir}; "
+        "wait for it to finish, then run again.",
+        f"cannot write to {Path(workdir) / '.snakemake'} ({{reason}}); run panelpipe from a "
+        "folder the user may write to.",
+    ):
         yield
 
 
