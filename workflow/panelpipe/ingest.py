@@ -74,9 +74,10 @@ def source_path(label: str) -> str:
     return head if sep and file_kind(Path(head)) == "workbook" else label
 
 
-def place(label: str, line: int) -> str:
+def place(label: object, line: object) -> str:
     """A row's place for messages: 'FILE line N', or 'FILE, sheet S, row N'."""
-    return f"{label}, row {line}" if source_path(label) != label else f"{label} line {line}"
+    text = str(label)
+    return f"{text}, row {line}" if source_path(text) != text else f"{text} line {line}"
 
 
 def _delimiter(spec: SourceSpec) -> str:

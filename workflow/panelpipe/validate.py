@@ -104,7 +104,7 @@ def _places(panel: pd.DataFrame, mask: pd.Series) -> tuple[str, list[dict[str, A
     records = [
         {"file": str(s), "line": int(n)} for s, n in zip(rows[SOURCE], rows[LINE], strict=True)
     ]
-    text = "; ".join(shown(place(str(r["file"]), int(str(r["line"])))) for r in records)
+    text = "; ".join(shown(place(r["file"], r["line"])) for r in records)
     extra = int(mask.sum()) - len(records)
     if extra > 0:
         text += f"; and {extra} more"
@@ -209,9 +209,7 @@ def _check_spellings(panel: pd.DataFrame, ids: pd.Series, col: str, out: list[Fi
                 "line": int(row[LINE]),
             }
             records.append(record)
-            spelled.append(
-                f"{record['value']!r} ({shown(place(str(record['file']), int(str(record['line']))))})"
-            )
+            spelled.append(f"{record['value']!r} ({shown(place(record['file'], record['line']))})")
         parts.append(" and ".join(spelled))
     out.append(
         Finding(
@@ -343,7 +341,7 @@ def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) ->
             )
         ]
         text = "; ".join(
-            f"({shown(r['unit'])}, {shown(r['period'])}) at {shown(place(str(r['file']), int(str(r['line']))))}"
+            f"({shown(r['unit'])}, {shown(r['period'])}) at {shown(place(r['file'], r['line']))}"
             for r in records
         )
         n_keys = int(panel.loc[within].drop_duplicates([*keys, SOURCE]).shape[0])
@@ -385,7 +383,7 @@ def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) ->
         text = "; ".join(
             f"({shown(r['unit'])}, {shown(r['period'])}) {shown(r['column'])}: "
             f"{shown(r['old'])} → {shown(r['new'])} "
-            f"(earlier value at {shown(place(str(r['file']), int(str(r['line']))))})"
+            f"(earlier value at {shown(place(r['file'], r['line']))})"
             for r in records
         )
         out.append(
