@@ -628,6 +628,11 @@ class SourceSpec:
                 "use one character for two purposes; numbers could not be told apart. "
                 "Change the 'csv' options (or this source's)."
             )
+        if self.header_row is not None and self.header_row < 1:
+            raise PanelpipeError(
+                f"{self.path}: the 'header_row' option {self.header_row} must be 1 or more "
+                "(1 = the first row of the sheet)."
+            )
         try:
             codecs.lookup(self.encoding)
         except LookupError:

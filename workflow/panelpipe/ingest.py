@@ -45,6 +45,7 @@ __all__ = [
     "LINE",
     "SOURCE",
     "place",
+    "read_as_text",
     "read_panel",
     "read_source",
     "source_label",
@@ -630,6 +631,17 @@ def _open(spec: SourceSpec) -> _CsvFile | _Columnar | _Workbook:
     if kind in _KIND_NAMES:
         return _Columnar.open(spec, str(kind))
     return _CsvFile.open(spec)
+
+
+def read_as_text(spec: SourceSpec) -> pd.DataFrame:
+    """Every column of one file as text, read as `read_source` reads it (for surveys).
+
+    Numbers typed by the file are written as a CSV file would hold them (a workbook's
+    2020.0 as '2020'); missing cells are <NA>.
+    """
+    source = _open(spec)
+    frame, _ = source.read(source.header, source.header)
+    return frame
 
 
 def read_source(spec: SourceSpec, columns: Sequence[str], *, text: Sequence[str]) -> pd.DataFrame:
