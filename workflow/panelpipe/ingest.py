@@ -386,7 +386,7 @@ def _xlsx_error_cells(path: Path, sheet: str) -> list[tuple[str, str]]:
             return []
         with archive.open(member) as stream:
             return [
-                (str(c.get("r")), "".join(c.itertext()))
+                (str(c.get("r")), "".join(v.text or "" for v in c if v.tag.endswith("}v")))
                 for _, c in ElementTree.iterparse(stream)
                 if c.tag.endswith("}c") and c.get("t") == "e"
             ]
