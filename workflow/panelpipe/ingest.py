@@ -508,7 +508,8 @@ class _Workbook:
                 if any(r[j] != "" for r in rows):
                     raise PanelpipeError(
                         f"{where}, cell {cell}: the column has data but no name in the header "
-                        "row (a merged or empty header cell). Give the column a name."
+                        "row (a merged or empty header cell). Give the column a name, or set "
+                        "'header_row' on this source if the names are in a later row."
                     )
                 continue
             if name in places:
