@@ -1,9 +1,17 @@
-"""Ingest: read one or more CSV or Parquet deliveries and stack them.
+"""Ingest: read one or more deliveries of any supported kind and stack them.
+
+The kind follows the file's name (`panelpipe.config.file_kind`): CSV, also
+compressed (gzip, zstd, bzip2: decompressed by pyarrow, then read as below),
+Parquet, Arrow IPC, and .xlsx/.ods workbooks (python-calamine: one maintained
+reader for both formats, written in Rust, many times faster than the pure-Python
+readers on large sheets).
 
 Every row keeps the file it came from and its line (CSV: the physical line on
 which the row's record starts, header = line 1, counting the extra lines of a
-quoted field that spans lines; Parquet: the row number, first row = 1), so that
-every later message can point at the place to fix. Inputs are only ever read.
+quoted field that spans lines; Parquet and Arrow: the row number, first row = 1;
+a workbook: the row of the sheet, with the sheet named in the source label, so
+messages say 'FILE, sheet S, row N'), so that every later message can point at
+the place to fix. Inputs are only ever read.
 
 CSV reading is strict, because a row lost without a word is worse than a
 refusal. Quoting follows RFC 4180 (a field that starts with ``"`` is quoted, a
