@@ -102,3 +102,63 @@ def folder_snapshot(folder: Path) -> dict[str, tuple[bytes | str, int]]:
         else:
             snap[rel] = (b"", st.st_mode)
     return snap
+
+
+# ---------------------------------------------------------------- workbooks
+#
+# Test fixtures only: the readers under test never write, so workbooks are written
+# with openpyxl (.xlsx) and pandas' OpenDocument writer (.ods).
+
+
+def workbook_bytes(rows: list[list[Any]], *, kind: str = "xlsx", sheet: str = "2024") -> bytes:
+    """A one-sheet workbook holding ``rows`` (the first is the header) as its bytes."""
+    import io
+
+    buffer = io.BytesIO()
+    if kind == "xlsx":
+        import openpyxl
+
+        book = openpyxl.Workbook()
+        table = book.active
+        assert table is not None
+        table.title = sheet
+        for row in rows:
+            table.append(row)
+        book.save(buffer)
+    else:
+        import pandas as pd
+
+        frame = pd.DataFrame(rows[1:], columns=rows[0])
+        frame.to_excel(buffer, sheet_name=sheet, index=False, engine="odf")
+    return buffer.getvalue()
+
+
+def patched_member(data: bytes, member: str, *changes: tuple[str, str]) -> bytes:
+    """The zip archive ``data`` with each (old, new) replaced once in ``member``.
+
+    Used to give a workbook what its writer cannot: a cached formula error, a merge.
+    """
+    import io
+    import zipfile
+
+    out = io.BytesIO()
+    with zipfile.ZipFile(io.BytesIO(data)) as src, zipfile.ZipFile(out, "w") as dst:
+        for info in src.infolist():
+            body = src.read(info.filename)
+            if info.filename == member:
+                text = body.decode("utf-8")
+                for old, new in changes:
+                    assert old in text, f"{old!r} not in {member}"
+                    text = text.replace(old, new, 1)
+                body = text.encode("utf-8")
+            dst.writestr(info, body)
+    return out.getvalue()
+
+
+def hostile_table() -> list[list[Any]]:
+    """The panel of ``hostile_rows`` as workbook rows: text ids, numbers as numbers."""
+    rows: list[list[Any]] = [HOSTILE_HEADER.strip().split(",")]
+    for line in hostile_rows().splitlines():
+        region, year, jobs, grant, coastal = line.split(",")
+        rows.append([region, int(year), float(jobs), float(grant), int(coastal)])
+    return rows

@@ -84,9 +84,9 @@ def test_missing_source_and_empty_glob(tmp_path: Path, monkeypatch: pytest.Monke
         "a_2020.csv",
         "b_2021.csv",
     ]
-    (tmp_path / "notes.xlsx").write_text("x")
-    with pytest.raises(PanelpipeError, match=r"neither CSV nor Parquet"):
-        resolve_sources(["notes.xlsx"], analysis="a")
+    (tmp_path / "notes.docx").write_text("x")
+    with pytest.raises(PanelpipeError, match=r"not a kind of file panelpipe reads"):
+        resolve_sources(["notes.docx"], analysis="a")
 
 
 def test_load_config_reports_yaml_errors(tmp_path: Path) -> None:

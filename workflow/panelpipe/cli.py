@@ -15,10 +15,18 @@ import subprocess
 import sys
 from collections.abc import Sequence
 from pathlib import Path
+from typing import Any
 
 import yaml
 
-from .config import REPO_ROOT, analysis_settings, load_config, source_specs, validate_config
+from .config import (
+    REPO_ROOT,
+    SourceSpec,
+    analysis_settings,
+    load_config,
+    source_specs,
+    validate_config,
+)
 from .findings import PanelpipeError
 from .ingest import read_panel
 from .runs import (
@@ -192,10 +200,24 @@ def _check(args: argparse.Namespace) -> int:
     return status
 
 
+_READING = ("delimiter", "decimal", "thousands", "encoding", "sheet", "header_row")
+"""The reading options of ``inspect`` and ``init``, named as a sources entry's keys."""
+
+
+def _reading(args: argparse.Namespace) -> dict[str, Any]:
+    """The reading options given on the command line, as a sources entry holds them."""
+    return {key: getattr(args, key) for key in _READING if getattr(args, key) is not None}
+
+
+def _source_spec(args: argparse.Namespace) -> SourceSpec:
+    """The file of ``inspect``/``init`` with the options given, as ``run`` would read it."""
+    return SourceSpec(Path(args.file), **_reading(args))
+
+
 def _inspect(args: argparse.Namespace) -> int:
     from .survey import inspect_file, render_profile
 
-    profile = inspect_file(Path(args.file), unit=args.unit, period=args.period)
+    profile = inspect_file(_source_spec(args), unit=args.unit, period=args.period)
     print(json.dumps(profile, indent=2, default=str) if args.json else render_profile(profile))
     return 0
 
@@ -204,7 +226,7 @@ def _init(args: argparse.Namespace) -> int:
     from .survey import analysis_name, inspect_file
 
     path = Path(args.file)
-    profile = inspect_file(path, unit=args.unit, period=args.period)
+    profile = inspect_file(_source_spec(args), unit=args.unit, period=args.period)
     columns = [c["name"] for c in profile["columns"]]
     if args.regressors:
         regressors = [r.strip() for r in args.regressors.split(",") if r.strip()]
@@ -222,7 +244,12 @@ def _init(args: argparse.Namespace) -> int:
         "analyses": {
             name: {
                 # Sources may be globs: a file whose name has [, * or ? is written escaped.
-                "sources": [glob.escape(str(path))],
+                # The options it was read with go with it, so that run reads it alike.
+                "sources": [
+                    {"path": glob.escape(str(path)), **_reading(args)}
+                    if _reading(args)
+                    else glob.escape(str(path))
+                ],
                 "unit": args.unit,
                 "period": args.period,
                 "outcome": args.outcome,
@@ -257,6 +284,25 @@ def _compare(args: argparse.Namespace) -> int:
     return 0
 
 
+def _reading_arguments(parser: argparse.ArgumentParser) -> None:
+    """The options that say how to read the file, as a sources entry says it."""
+    group = parser.add_argument_group(
+        "reading the file (the keys of a 'sources' entry; see config/README.md)"
+    )
+    group.add_argument("--delimiter", help="CSV field separator (default ',', tab for .tsv)")
+    group.add_argument("--decimal", choices=[".", ","], help="decimal mark of CSV numbers")
+    group.add_argument(
+        "--thousands", choices=["", ".", ",", "'", " "], help="thousands separator of CSV"
+    )
+    group.add_argument("--encoding", help="text encoding of a CSV file (default utf-8)")
+    group.add_argument("--sheet", help="workbook sheet to read (default: the first)")
+    group.add_argument(
+        "--header-row",
+        type=int,
+        help="workbook row holding the column names (default: the first that holds anything)",
+    )
+
+
 def _parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="panelpipe",
@@ -274,13 +320,15 @@ def _parser() -> argparse.ArgumentParser:
     chk = sub.add_parser("check", help="read and validate every analysis's data without estimating")
     chk.add_argument("--config", help="configuration file (default: config/config.yaml)")
     chk.add_argument("--verbose", "-v", action="store_true", help="also list information")
-    ins = sub.add_parser("inspect", help="profile a CSV or Parquet file as a panel")
+    ins = sub.add_parser("inspect", help="profile a source file as a panel")
     ins.add_argument("file")
     ins.add_argument("--unit")
     ins.add_argument("--period")
     ins.add_argument("--json", action="store_true", help="print the profile as JSON")
+    _reading_arguments(ins)
     ini = sub.add_parser("init", help="write a starting config for a file")
     ini.add_argument("file")
+    _reading_arguments(ini)
     ini.add_argument("--unit", required=True)
     ini.add_argument("--period", required=True)
     ini.add_argument("--outcome", required=True)

@@ -41,6 +41,7 @@ __all__ = [
     "AnalysisSettings",
     "SourceSpec",
     "analysis_settings",
+    "file_kind",
     "load_config",
     "resolve_sources",
     "source_files",
@@ -439,6 +440,38 @@ def analysis_settings(config: Mapping[str, Any], name: str) -> AnalysisSettings:
     )
 
 
+_TEXT_ENDINGS = (".csv", ".tsv", ".txt")
+_COMPRESSED_ENDINGS = (".gz", ".zst", ".bz2")
+_KINDS_BY_ENDING = {
+    **{e: "csv" for e in _TEXT_ENDINGS},
+    **{t + c: "csv" for t in _TEXT_ENDINGS for c in _COMPRESSED_ENDINGS},
+    ".parquet": "parquet",
+    ".pq": "parquet",
+    ".arrow": "arrow",
+    ".feather": "arrow",
+    ".xlsx": "workbook",
+    ".ods": "workbook",
+}
+_KNOWN_ENDINGS = (
+    ".csv, .tsv, .txt (also compressed: .csv.gz, .csv.zst, .csv.bz2), .parquet, "
+    ".arrow, .feather, .xlsx or .ods"
+)
+
+
+def file_kind(path: Path) -> str | None:
+    """How a source file is read, from its name: csv, parquet, arrow or workbook.
+
+    Compressed text (``.csv.gz``, ``.tsv.zst``, ``.txt.bz2``...) is ``csv``: it is
+    decompressed as it is read. Any other name gives None.
+    """
+    suffixes = [s.lower() for s in path.suffixes[-2:]]
+    for n in (2, 1):
+        kind = _KINDS_BY_ENDING.get("".join(suffixes[-n:]))
+        if kind:
+            return kind
+    return None
+
+
 def _entry_path(entry: str | Mapping[str, Any]) -> str:
     return entry if isinstance(entry, str) else str(entry["path"])
 
@@ -498,7 +531,8 @@ def source_files(
     ------
     PanelpipeError
         If a path or pattern finds nothing, a match is not a regular readable
-        file, a file is not CSV or Parquet, or a file is listed twice.
+        file, a file is of no kind `file_kind` knows, a workbook option is given
+        for another kind of file, or a file is listed twice.
     """
     files: list[tuple[Path, dict[str, Any]]] = []
     for entry in sources:
@@ -521,12 +555,17 @@ def source_files(
         for match in matches:
             _check_regular(Path(match), pattern, analysis)
             files.append((Path(match), options))
-    suffixes = {".csv", ".parquet", ".pq", ".txt", ".tsv"}
-    for p, _ in files:
-        if p.suffix.lower() not in suffixes and not p.name.lower().endswith(".csv.gz"):
+    for p, options in files:
+        kind = file_kind(p)
+        if kind is None:
             raise PanelpipeError(
-                f"analysis {analysis!r}: {p} is neither CSV nor Parquet "
-                "(expected a name ending in .csv, .csv.gz, .tsv, .txt or .parquet)."
+                f"analysis {analysis!r}: {p} is not a kind of file panelpipe reads "
+                f"(expected a name ending in {', '.join(_KNOWN_ENDINGS)})."
+            )
+        if kind != "workbook" and ("sheet" in options or "header_row" in options):
+            raise PanelpipeError(
+                f"analysis {analysis!r}: the source {str(p)!r} is not a workbook (.xlsx, .ods); "
+                "'sheet' and 'header_row' apply to workbooks only. Remove them from this entry."
             )
     names = [str(p) for p, _ in files]
     repeated = sorted({n for n in names if names.count(n) > 1})
@@ -545,7 +584,10 @@ def resolve_sources(sources: tuple[Any, ...] | list[Any], *, analysis: str) -> l
 
 @dataclass(frozen=True)
 class SourceSpec:
-    """One file to read, with the CSV options and renames that apply to it.
+    """One file to read, with the reading options and renames that apply to it.
+
+    ``sheet`` and ``header_row`` (1-based) choose the table of a workbook; None
+    means the first sheet and its first row that holds anything.
 
     Raises
     ------
@@ -562,6 +604,8 @@ class SourceSpec:
     missing: tuple[str, ...] = ("", "NA", "N/A", "n/a", "NaN", "nan", "NULL", "null", ".")
     rename: Mapping[str, str] = field(default_factory=dict)
     thousands: str = ""
+    sheet: str | None = None
+    header_row: int | None = None
 
     def __post_init__(self) -> None:
         where = f"{self.path}: the 'delimiter' option"
@@ -584,6 +628,11 @@ class SourceSpec:
                 "use one character for two purposes; numbers could not be told apart. "
                 "Change the 'csv' options (or this source's)."
             )
+        if self.header_row is not None and self.header_row < 1:
+            raise PanelpipeError(
+                f"{self.path}: the 'header_row' option {self.header_row} must be 1 or more "
+                "(1 = the first row of the sheet)."
+            )
         try:
             codecs.lookup(self.encoding)
         except LookupError:
@@ -600,6 +649,10 @@ def _entry_options(entry: str | Mapping[str, Any], csv: Mapping[str, Any]) -> di
     for key in ("delimiter", "decimal", "encoding", "thousands"):
         if key in options:
             kwargs[key] = str(options[key])
+    if "sheet" in options:
+        kwargs["sheet"] = str(options["sheet"])
+    if "header_row" in options:
+        kwargs["header_row"] = int(options["header_row"])
     if "missing" in options:
         kwargs["missing"] = tuple(str(m) for m in options["missing"])
     if "rename" in options:

@@ -23,7 +23,7 @@ import yaml
 from . import __version__
 from .config import AnalysisSettings, SourceSpec, source_specs
 from .findings import Finding, PanelpipeError
-from .ingest import read_panel
+from .ingest import SOURCE, read_panel, source_path
 from .runs import atomic_write_text, fault_point, file_digest, input_change
 from .validate import validate_panel
 
@@ -93,7 +93,7 @@ def ingest_step(
     _hash_as_planned(settings.name, specs, planned["inputs"], "starting")
     panel = read_panel(specs, settings.columns, text=text)
     now = _hash_as_planned(settings.name, specs, planned["inputs"], "reading it")
-    counts = panel["_source"].value_counts(sort=False)
+    counts = panel[SOURCE].astype("string").map(source_path).value_counts(sort=False)
     sources = [
         {"path": path, "sha256": digest, "rows": int(counts.get(path, 0))} for path, digest in now
     ]

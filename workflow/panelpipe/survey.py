@@ -1,19 +1,25 @@
-"""Survey: profile a CSV or Parquet file before writing a configuration.
+"""Survey: profile a source file before writing a configuration.
 
 Used by ``panelpipe inspect`` and ``panelpipe init``: columns and types,
 candidate unit and period columns, balance, gaps, duplicates and missing values.
+The file is read by the same readers, with the same options, as ``panelpipe run``
+reads it, and a period candidate is a column that the run's period parser reads
+(`panelpipe.periods.parse_periods`): years, whole-number indices, quarters,
+months or dates.
 """
 
 from __future__ import annotations
 
 import re
 import unicodedata
-from pathlib import Path
 from typing import Any
 
 import pandas as pd
 
+from .config import SourceSpec, file_kind
 from .findings import PanelpipeError
+from .ingest import read_as_text, source_label
+from .periods import parse_periods
 
 __all__ = ["analysis_name", "inspect_file", "render_profile"]
 
@@ -35,35 +41,64 @@ def analysis_name(stem: str) -> str:
     return name or "panel"
 
 
-def _read(path: Path) -> pd.DataFrame:
+def _read(spec: SourceSpec) -> pd.DataFrame:
+    path = spec.path
     if not path.is_file():
         raise PanelpipeError(f"{path}: no such file.")
-    try:
-        if path.suffix.lower() in {".parquet", ".pq"}:
-            return pd.read_parquet(path)
-        return pd.read_csv(path, encoding="utf-8-sig", dtype=str, keep_default_na=True)
-    except Exception as exc:  # any parser failure is the user's file to fix
-        raise PanelpipeError(f"{path}: cannot read the file as a table ({exc}).") from exc
+    kind = file_kind(path)
+    if kind is None:
+        raise PanelpipeError(
+            f"{path}: not a kind of file panelpipe reads (see 'sources' in config/README.md)."
+        )
+    if kind != "workbook" and (spec.sheet is not None or spec.header_row is not None):
+        raise PanelpipeError(
+            f"{path}: --sheet and --header-row apply to workbooks (.xlsx, .ods) only."
+        )
+    return read_as_text(spec)
 
 
-def _period_like(values: pd.Series) -> bool:
-    numbers = pd.to_numeric(values, errors="coerce")
-    if numbers.notna().mean() < 0.99:
-        return False
-    whole = (numbers.dropna() % 1 == 0).all()
-    return bool(whole and numbers.between(1800, 2200).all() and 1 < numbers.nunique() <= 400)
+def _numbers(values: pd.Series, spec: SourceSpec) -> pd.Series:
+    """The column's numbers as the run reads them (the source's decimal mark); NaN if not."""
+    text = values.astype("string").str.strip()
+    if spec.thousands:
+        text = text.str.replace(spec.thousands, "", regex=False)
+    if spec.decimal != ".":
+        text = text.where(~text.str.contains(".", regex=False)).str.replace(
+            spec.decimal, ".", regex=False
+        )
+    return pd.to_numeric(text, errors="coerce")
+
+
+_CALENDAR = ("year", "quarter", "month", "day")
+"""Period frequencies proposed first; whole-number indices only when none of these is found."""
+
+_MAX_PERIODS = 400
+"""More distinct values than this, and a column is not proposed as the period."""
+
+
+def _period_frequency(values: pd.Series) -> str | None:
+    """The frequency the run would read a column as, if it could be the period column."""
+    present = values.dropna()
+    if len(present) < 0.99 * len(values) or not 1 < present.nunique() <= _MAX_PERIODS:
+        return None
+    parsed = parse_periods(present)
+    if parsed.mixed or parsed.frequency == "empty" or parsed.bad.mean() > 0.01:
+        return None
+    return parsed.frequency
 
 
 def inspect_file(
-    path: Path, *, unit: str | None = None, period: str | None = None
+    spec: SourceSpec, *, unit: str | None = None, period: str | None = None
 ) -> dict[str, Any]:
     """Profile a file as a panel; guess unit and period columns unless given."""
-    frame = _read(Path(path))
+    path = spec.path
+    frame = _read(spec)
     n = len(frame)
+    numbers = {col: _numbers(frame[col], spec) for col in frame.columns}
     columns = []
     for col in frame.columns:
         values = frame[col]
-        numeric = pd.to_numeric(values, errors="coerce")
+        numeric = numbers[col]
         columns.append(
             {
                 "name": str(col),
@@ -80,7 +115,12 @@ def inspect_file(
                 f"{path}: {what} column {given!r} not found; the file has "
                 f"{', '.join(map(repr, map(str, frame.columns)))}."
             )
-    periods = [period] if period else [str(c) for c in frame.columns if _period_like(frame[c])]
+    if period:
+        periods = [period]
+    else:
+        found = {str(c): _period_frequency(frame[c]) for c in frame.columns}
+        periods = [c for c, f in found.items() if f in _CALENDAR]
+        periods = periods or [c for c, f in found.items() if f == "integer"]
     units: list[str] = []
     if unit:
         units = [unit]
@@ -89,13 +129,13 @@ def inspect_file(
         for col in frame.columns:
             if col == p or frame[col].nunique() < 2 or frame[col].nunique() == n:
                 continue
-            numbers = pd.to_numeric(frame[col], errors="coerce")
-            if numbers.notna().all() and not (numbers % 1 == 0).all():
+            values = numbers[col]
+            if values.notna().all() and not (values % 1 == 0).all():
                 continue  # measurements, not identifiers
             if not frame.duplicated([col, p]).any():
                 units.append(str(col))
     profile: dict[str, Any] = {
-        "file": str(path),
+        "file": str(path) if spec.sheet is None else source_label(path, spec.sheet),
         "rows": n,
         "columns": columns,
         "unit_candidates": units,
@@ -106,7 +146,7 @@ def inspect_file(
         keys = frame[[u, p]]
         per_unit = keys.groupby(u)[p].nunique()
         all_periods = keys[p].nunique()
-        span = pd.to_numeric(keys[p], errors="coerce")
+        span = parse_periods(keys[p]).ordinal.astype("Float64")
         by_unit = span.groupby(keys[u]).agg(["min", "max", "count"])
         gaps = int(((by_unit["max"] - by_unit["min"] + 1) - by_unit["count"]).clip(lower=0).sum())
         profile["panel"] = {

@@ -30,7 +30,7 @@ import pandas as pd
 
 from .config import AnalysisSettings, SourceSpec, source_spec_of
 from .findings import Finding, Severity, worst_status
-from .ingest import LINE, SOURCE
+from .ingest import LINE, SOURCE, place, source_path
 from .periods import MAX_DIGITS, YEARS, label_of, parse_periods
 
 __all__ = [
@@ -104,7 +104,7 @@ def _places(panel: pd.DataFrame, mask: pd.Series) -> tuple[str, list[dict[str, A
     records = [
         {"file": str(s), "line": int(n)} for s, n in zip(rows[SOURCE], rows[LINE], strict=True)
     ]
-    text = "; ".join(f"{shown(r['file'])} line {r['line']}" for r in records)
+    text = "; ".join(shown(place(r["file"], r["line"])) for r in records)
     extra = int(mask.sum()) - len(records)
     if extra > 0:
         text += f"; and {extra} more"
@@ -209,7 +209,7 @@ def _check_spellings(panel: pd.DataFrame, ids: pd.Series, col: str, out: list[Fi
                 "line": int(row[LINE]),
             }
             records.append(record)
-            spelled.append(f"{record['value']!r} ({shown(record['file'])} line {record['line']})")
+            spelled.append(f"{record['value']!r} ({shown(place(record['file'], record['line']))})")
         parts.append(" and ".join(spelled))
     out.append(
         Finding(
@@ -341,7 +341,7 @@ def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) ->
             )
         ]
         text = "; ".join(
-            f"({shown(r['unit'])}, {shown(r['period'])}) at {shown(r['file'])} line {r['line']}"
+            f"({shown(r['unit'])}, {shown(r['period'])}) at {shown(place(r['file'], r['line']))}"
             for r in records
         )
         n_keys = int(panel.loc[within].drop_duplicates([*keys, SOURCE]).shape[0])
@@ -383,7 +383,7 @@ def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) ->
         text = "; ".join(
             f"({shown(r['unit'])}, {shown(r['period'])}) {shown(r['column'])}: "
             f"{shown(r['old'])} → {shown(r['new'])} "
-            f"(earlier value at {shown(r['file'])} line {r['line']})"
+            f"(earlier value at {shown(place(r['file'], r['line']))})"
             for r in records
         )
         out.append(
@@ -445,7 +445,7 @@ def _to_numbers(raw: pd.Series, panel: pd.DataFrame, s: AnalysisSettings) -> pd.
     sources = panel[SOURCE].astype("string")
     for source in sources[is_text].unique():
         rows = is_text & (sources == source)
-        spec = source_spec_of(str(source), s.sources, s.csv)
+        spec = source_spec_of(source_path(str(source)), s.sources, s.csv)
         values[rows] = _numbers_of_source(raw[rows].astype("string"), spec)
     return values
 
