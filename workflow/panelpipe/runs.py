@@ -109,7 +109,7 @@ def code_fingerprint(root: Path = REPO_ROOT) -> str:
     )
     # Tools that never touch a run's results (benchmark, demo generator, file
     # survey) stay out of the hash, so editing them does not start new runs.
-    outside = {"bench.py", "demo.py", "survey.py"}
+    outside = {"bench.py", "demo.py", "readspeed.py", "survey.py"}
     files = sorted(
         {p for pat in patterns for p in root.glob(pat) if p.is_file() and p.name not in outside}
     )
