@@ -32,7 +32,8 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
-from .config import SourceSpec
+from .config import DatabaseSpec, SourceSpec
+from .database import read_database
 from .findings import PanelpipeError
 
 __all__ = ["LINE", "SOURCE", "read_panel", "read_source"]
@@ -296,8 +297,10 @@ class _CsvFile:
         return table, rows
 
 
-def read_source(spec: SourceSpec, columns: Sequence[str], *, text: Sequence[str]) -> pd.DataFrame:
-    """Read the named columns of one file; ``text`` columns are kept as text.
+def read_source(
+    spec: SourceSpec | DatabaseSpec, columns: Sequence[str], *, text: Sequence[str]
+) -> pd.DataFrame:
+    """Read the named columns of one file or query; ``text`` columns are kept as text.
 
     Raises
     ------
@@ -305,6 +308,8 @@ def read_source(spec: SourceSpec, columns: Sequence[str], *, text: Sequence[str]
         If the file cannot be read, breaks the CSV rules above, has no data rows or
         lacks a column, naming the file and, where there is one, the line.
     """
+    if isinstance(spec, DatabaseSpec):
+        return read_database(spec, columns, text=text)
     path = spec.path
     csv_file = None
     if _is_parquet(spec):
@@ -356,7 +361,7 @@ def read_source(spec: SourceSpec, columns: Sequence[str], *, text: Sequence[str]
 
 
 def read_panel(
-    specs: Sequence[SourceSpec], columns: Sequence[str], *, text: Sequence[str]
+    specs: Sequence[SourceSpec | DatabaseSpec], columns: Sequence[str], *, text: Sequence[str]
 ) -> pd.DataFrame:
     """Read every source and stack them in the order given.
 

@@ -29,6 +29,7 @@ import numpy as np
 import pandas as pd
 
 from .config import AnalysisSettings, SourceSpec, source_spec_of
+from .database import place
 from .findings import Finding, Severity, worst_status
 from .ingest import LINE, SOURCE
 from .periods import MAX_DIGITS, YEARS, label_of, parse_periods
@@ -99,12 +100,12 @@ class ValidationResult:
 
 
 def _places(panel: pd.DataFrame, mask: pd.Series) -> tuple[str, list[dict[str, Any]]]:
-    """Quote the first offending rows as 'file line N' and structured records."""
+    """Quote the first offending rows as 'file line N' (or 'database, row N') and records."""
     rows = panel.loc[mask, [SOURCE, LINE]].head(_LISTED)
     records = [
         {"file": str(s), "line": int(n)} for s, n in zip(rows[SOURCE], rows[LINE], strict=True)
     ]
-    text = "; ".join(f"{shown(r['file'])} line {r['line']}" for r in records)
+    text = "; ".join(f"{place(shown(r['file']), r['line'])}" for r in records)
     extra = int(mask.sum()) - len(records)
     if extra > 0:
         text += f"; and {extra} more"
@@ -209,7 +210,7 @@ def _check_spellings(panel: pd.DataFrame, ids: pd.Series, col: str, out: list[Fi
                 "line": int(row[LINE]),
             }
             records.append(record)
-            spelled.append(f"{record['value']!r} ({shown(record['file'])} line {record['line']})")
+            spelled.append(f"{record['value']!r} ({place(shown(record['file']), record['line'])})")
         parts.append(" and ".join(spelled))
     out.append(
         Finding(
@@ -341,7 +342,7 @@ def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) ->
             )
         ]
         text = "; ".join(
-            f"({shown(r['unit'])}, {shown(r['period'])}) at {shown(r['file'])} line {r['line']}"
+            f"({shown(r['unit'])}, {shown(r['period'])}) at {place(shown(r['file']), r['line'])}"
             for r in records
         )
         n_keys = int(panel.loc[within].drop_duplicates([*keys, SOURCE]).shape[0])
@@ -383,7 +384,7 @@ def _check_keys(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]) ->
         text = "; ".join(
             f"({shown(r['unit'])}, {shown(r['period'])}) {shown(r['column'])}: "
             f"{shown(r['old'])} → {shown(r['new'])} "
-            f"(earlier value at {shown(r['file'])} line {r['line']})"
+            f"(earlier value at {place(shown(r['file']), r['line'])})"
             for r in records
         )
         out.append(

@@ -1,0 +1,319 @@
+"""Database sources: the rows a query returns from PostgreSQL or SQLite.
+
+A ``{database, query}`` entry of ``sources`` is read with the query as written,
+in a read-only session (PostgreSQL: a read-only transaction through a server-side
+cursor; SQLite: the file opened read-only, so a missing file is never created),
+fetched in chunks of :data:`CHUNK_ROWS` rows.
+
+The password never enters panelpipe: libpq reads it from ``PGPASSWORD`` or the
+password file (``~/.pgpass``, or ``PGPASSFILE``). A URL that carries one is
+refused before any connection, so no config, manifest, log or report can hold it.
+
+Every row gets ``_source`` = the source's label (the URL, see
+`panelpipe.config.DatabaseSpec`) and ``_line`` = its row number in the result
+(first row = 1), so messages read "<label>, row N".
+
+The rows are hashed in a canonical form (`RowHasher`) while they are fetched:
+the run id hashes them at planning, and the ingest step refuses rows whose hash
+differs from the plan, just as it refuses a file whose bytes changed.
+"""
+
+from __future__ import annotations
+
+import decimal
+import hashlib
+import os
+import sqlite3
+import stat
+import urllib.parse
+from collections.abc import Iterator, Sequence
+from contextlib import closing, contextmanager
+from typing import Any
+
+import pandas as pd
+
+from .config import DatabaseSpec
+from .findings import PanelpipeError
+
+__all__ = [
+    "CHUNK_ROWS",
+    "LABEL_PREFIXES",
+    "RowHasher",
+    "place",
+    "read_database",
+    "rows_digest",
+    "server_of",
+    "sqlite_path",
+]
+
+CHUNK_ROWS = 50_000
+"""Rows fetched per round trip: a few megabytes, whatever the size of the result."""
+
+LABEL_PREFIXES = ("postgresql://", "postgres://", "sqlite://")
+"""How a database source's label starts (a file path never does)."""
+
+_TIMEOUT_S = 15
+"""Seconds to wait for a PostgreSQL server to answer before calling it unreachable."""
+
+_PASSWORD_HELP = (
+    "put the password in the PGPASSWORD environment variable or in the password file "
+    "~/.pgpass (one line host:port:database:user:password, mode 0600)"
+)
+
+
+def place(source: str, line: object) -> str:
+    """Where a row came from, for messages: "<file> line N" or "<database>, row N"."""
+    if source.startswith(LABEL_PREFIXES):
+        return f"{source}, row {line}"
+    return f"{source} line {line}"
+
+
+def _cut(query: str, limit: int = 200) -> str:
+    flat = " ".join(query.split())
+    return repr(flat if len(flat) <= limit else flat[:limit] + "...")
+
+
+def _where(spec: DatabaseSpec) -> str:
+    return f"{spec.label}, query {_cut(spec.query)}"
+
+
+class RowHasher:
+    """SHA-256 of a query result in a canonical form.
+
+    Notes
+    -----
+    The hash covers, in order: the column names with the type the engine
+    reports for each (PostgreSQL's type name; SQLite reports none), then every
+    row as ``repr`` of its tuple of Python values, one per line. ``repr`` keeps
+    the type of each value (``1``, ``1.0``, ``'1'`` and ``Decimal('1.0')`` differ)
+    and writes floats exactly (shortest round-trip digits), so one changed cell,
+    a changed type or a changed row order gives another hash, and the same rows
+    give the same hash on every machine with the same driver.
+    """
+
+    def __init__(self, names: Sequence[str], types: Sequence[str]) -> None:
+        self._h = hashlib.sha256(repr([list(names), list(types)]).encode())
+
+    def update(self, rows: Sequence[tuple[Any, ...]]) -> None:
+        self._h.update("".join(f"{row!r}\n" for row in rows).encode())
+
+    def hexdigest(self) -> str:
+        return self._h.hexdigest()
+
+
+def sqlite_path(spec: DatabaseSpec) -> str:
+    """The file of a ``sqlite:///path`` URL (``sqlite:////abs/path`` for an absolute one).
+
+    Raises
+    ------
+    PanelpipeError
+        If the URL names no file, or the file is missing or not a regular file.
+    """
+    rest = spec.database.removeprefix("sqlite://")
+    path = urllib.parse.unquote(rest[1:]) if rest.startswith("/") else ""
+    if not path:
+        raise PanelpipeError(
+            f"{spec.label}: a SQLite URL names a file after three slashes: sqlite:///relative/"
+            "path.db, or sqlite:////absolute/path.db. Fix 'database' in 'sources'."
+        )
+    try:
+        mode = os.stat(path).st_mode
+    except OSError as exc:
+        raise PanelpipeError(
+            f"{spec.label}: the SQLite file {path!r} cannot be opened ({exc.strerror}; looked "
+            f"from {os.getcwd()}). Check 'database' in 'sources'."
+        ) from exc
+    if not stat.S_ISREG(mode):
+        raise PanelpipeError(
+            f"{spec.label}: {path!r} is not a regular file, so not a SQLite database. "
+            "Check 'database' in 'sources'."
+        )
+    return path
+
+
+@contextmanager
+def _sqlite_cursor(spec: DatabaseSpec) -> Iterator[sqlite3.Cursor]:
+    path = sqlite_path(spec)
+    uri = f"file:{urllib.parse.quote(os.path.abspath(path))}?mode=ro"
+    try:
+        with closing(sqlite3.connect(uri, uri=True)) as conn, closing(conn.cursor()) as cur:
+            cur.execute(spec.query)
+            yield cur
+    except sqlite3.DatabaseError as exc:
+        if "not a database" in str(exc):
+            raise PanelpipeError(
+                f"{spec.label}: {path!r} is not a SQLite database (or it is damaged). Check "
+                "'database' in 'sources', or deliver the file again."
+            ) from exc
+        raise PanelpipeError(
+            f"{_where(spec)}: the query failed ({exc}). Correct the query in 'sources'."
+        ) from exc
+
+
+def _postgres_password_refused(spec: DatabaseSpec) -> dict[str, str]:
+    """The URL's connection parameters; refuse one that carries a password."""
+    import psycopg.conninfo
+
+    try:
+        params = psycopg.conninfo.conninfo_to_dict(spec.database)
+    except psycopg.ProgrammingError as exc:
+        raise PanelpipeError(
+            f"{spec.label}: not a PostgreSQL URL libpq can read ({exc}). Write it as "
+            "postgresql://user@host:port/database."
+        ) from None
+    if "password" in params:
+        # The label is the URL itself: it must not be echoed here.
+        raise PanelpipeError(
+            "a PostgreSQL URL in 'sources' carries a password; a password never goes in the "
+            f"configuration: remove it from the URL and {_PASSWORD_HELP}."
+        )
+    return {k: str(v) for k, v in params.items()}
+
+
+def server_of(spec: DatabaseSpec) -> dict[str, str]:
+    """The server and database a source reads, for the manifest (no password)."""
+    if spec.database.startswith("sqlite:"):
+        return {"server": "sqlite (a file)", "database": sqlite_path(spec)}
+    params = _postgres_password_refused(spec)
+    host = params.get("host") or "local socket"
+    return {
+        "server": f"{host}:{params['port']}" if params.get("port") else host,
+        "database": params.get("dbname") or params.get("user") or "",
+    }
+
+
+@contextmanager
+def _postgres_cursor(spec: DatabaseSpec) -> Iterator[Any]:
+    import psycopg
+
+    _postgres_password_refused(spec)
+    try:
+        conn = psycopg.connect(spec.database, connect_timeout=_TIMEOUT_S)
+    except psycopg.OperationalError as exc:
+        reason = " ".join(str(exc).split())
+        if "password" in reason or "authentication" in reason:
+            raise PanelpipeError(
+                f"{spec.label}: the server refused the login ({reason}). Check the user in "
+                f"the URL and {_PASSWORD_HELP}."
+            ) from None
+        raise PanelpipeError(
+            f"{spec.label}: cannot connect to the database server ({reason}). Check the host, "
+            "port and database name in the URL, and that the server is running and reachable."
+        ) from None
+    try:
+        with conn:
+            conn.read_only = True  # the delivery is only ever read
+            with conn.cursor(name="panelpipe_rows", binary=True) as cur:
+                cur.itersize = CHUNK_ROWS
+                cur.execute(spec.query)
+                yield cur
+    except psycopg.Error as exc:
+        reason = " ".join(str(exc).split())
+        raise PanelpipeError(
+            f"{_where(spec)}: the query failed ({reason}). Correct the query in 'sources'."
+        ) from None
+    finally:
+        conn.close()
+
+
+@contextmanager
+def _cursor(spec: DatabaseSpec) -> Iterator[Any]:
+    if spec.database.startswith("sqlite:"):
+        with _sqlite_cursor(spec) as cur:
+            yield cur
+    else:
+        with _postgres_cursor(spec) as cur:
+            yield cur
+
+
+def _header(spec: DatabaseSpec, cur: Any) -> tuple[list[str], list[str]]:
+    if cur.description is None:
+        raise PanelpipeError(
+            f"{_where(spec)}: the statement returns no rows (it is not a query). Write a "
+            "SELECT that returns the panel's rows."
+        )
+    names = [str(col[0]) for col in cur.description]
+    types = [str(getattr(col, "type_display", "") or "") for col in cur.description]
+    repeated = sorted({n for n in names if names.count(n) > 1})
+    if repeated:
+        raise PanelpipeError(
+            f"{_where(spec)}: the result has column(s) {', '.join(map(repr, repeated))} more "
+            "than once; give each column its own name (SELECT a.x AS x_a, ...)."
+        )
+    return names, types
+
+
+def _fetch(spec: DatabaseSpec, *, keep: bool) -> tuple[list[str], list[tuple[Any, ...]], str]:
+    """Run the query: column names, rows (if ``keep``) and the rows' hash."""
+    rows: list[tuple[Any, ...]] = []
+    n = 0
+    with _cursor(spec) as cur:
+        names, types = _header(spec, cur)
+        hasher = RowHasher(names, types)
+        while chunk := cur.fetchmany(CHUNK_ROWS):
+            hasher.update(chunk)
+            n += len(chunk)
+            if keep:
+                rows.extend(chunk)
+    if n == 0:
+        raise PanelpipeError(
+            f"{_where(spec)}: the query returned no rows. Check the query (a WHERE clause "
+            "that selects nothing, an empty table), or remove the entry from 'sources'."
+        )
+    return names, rows, hasher.hexdigest()
+
+
+def rows_digest(spec: DatabaseSpec) -> str:
+    """Run the query and return the SHA-256 of its rows (see `RowHasher`)."""
+    return _fetch(spec, keep=False)[2]
+
+
+def read_database(
+    spec: DatabaseSpec, columns: Sequence[str], *, text: Sequence[str]
+) -> pd.DataFrame:
+    """Read the named columns of a query's result; ``text`` columns are kept as text.
+
+    Raises
+    ------
+    PanelpipeError
+        If the server cannot be reached, refuses the login, the query fails or
+        returns no rows, a column is missing, or the rows differ from
+        ``spec.expect`` (when set), naming the database and the query.
+    """
+    names, rows, digest = _fetch(spec, keep=True)
+    if spec.expect and digest != spec.expect:
+        raise PanelpipeError(
+            f"{_where(spec)}: the rows the query returns changed while the run was reading "
+            f"them (SHA-256 {spec.expect[:12]}... when the run was planned, {digest[:12]}... "
+            "now). The table may still be loading: wait until it is complete, then run again."
+        )
+    unknown = sorted(set(spec.rename) - set(names))
+    if unknown:
+        raise PanelpipeError(
+            f"{_where(spec)}: 'rename' names column(s) {', '.join(map(repr, unknown))} that "
+            f"the result does not have; it has {', '.join(map(repr, names))}."
+        )
+    seen = [spec.rename.get(c, c) for c in names]
+    missing = [c for c in columns if c not in seen]
+    if missing:
+        raise PanelpipeError(
+            f"{_where(spec)}: column(s) {', '.join(map(repr, missing))} not in the result; "
+            f"it has {', '.join(map(repr, names))}. Select them in the query, or map a "
+            "column of another name with 'rename' on this source."
+        )
+    index = {name: i for i, name in enumerate(seen)}
+    frame = pd.DataFrame(index=pd.RangeIndex(len(rows)))
+    for col in columns:
+        values = [row[index[col]] for row in rows]
+        if col in text:
+            # From the values themselves: an integer column with NULLs stays "2020", not "2020.0".
+            frame[col] = pd.array([None if v is None else str(v) for v in values], dtype="string")
+        else:
+            frame[col] = pd.Series(values, dtype=object).infer_objects()
+            if frame[col].dtype == object and all(
+                v is None or isinstance(v, (int, float, decimal.Decimal)) for v in values
+            ):
+                frame[col] = pd.to_numeric(frame[col])  # exact numerics (NUMERIC) as numbers
+    frame["_source"] = spec.label
+    frame["_line"] = pd.RangeIndex(1, len(rows) + 1)
+    return frame
