@@ -243,12 +243,37 @@ def _header(spec: DatabaseSpec, cur: Any) -> tuple[list[str], list[str]]:
     return names, types
 
 
-def _fetch(spec: DatabaseSpec, *, keep: bool) -> tuple[list[str], list[tuple[Any, ...]], str]:
-    """Run the query: column names, rows (if ``keep``) and the rows' hash."""
+def _named(spec: DatabaseSpec, names: Sequence[str], columns: Sequence[str]) -> list[str]:
+    """The result's column names after 'rename'; refuse when a wanted column is missing."""
+    unknown = sorted(set(spec.rename) - set(names))
+    if unknown:
+        raise PanelpipeError(
+            f"{_where(spec)}: 'rename' names column(s) {', '.join(map(repr, unknown))} that "
+            f"the result does not have; it has {', '.join(map(repr, names))}."
+        )
+    seen = [spec.rename.get(c, c) for c in names]
+    missing = [c for c in columns if c not in seen]
+    if missing:
+        raise PanelpipeError(
+            f"{_where(spec)}: column(s) {', '.join(map(repr, missing))} not in the result; "
+            f"it has {', '.join(map(repr, names))}. Select them in the query, or map a "
+            "column of another name with 'rename' on this source."
+        )
+    return seen
+
+
+def _fetch(
+    spec: DatabaseSpec, columns: Sequence[str], *, keep: bool
+) -> tuple[list[str], list[tuple[Any, ...]], str]:
+    """Run the query: names (after 'rename'), rows (if ``keep``) and the rows' hash.
+
+    A missing column is refused from the header, before any row is fetched.
+    """
     rows: list[tuple[Any, ...]] = []
     n = 0
     with _cursor(spec) as cur:
         names, types = _header(spec, cur)
+        seen = _named(spec, names, columns)
         hasher = RowHasher(names, types)
         while chunk := cur.fetchmany(CHUNK_ROWS):
             hasher.update(chunk)
@@ -260,12 +285,18 @@ def _fetch(spec: DatabaseSpec, *, keep: bool) -> tuple[list[str], list[tuple[Any
             f"{_where(spec)}: the query returned no rows. Check the query (a WHERE clause "
             "that selects nothing, an empty table), or remove the entry from 'sources'."
         )
-    return names, rows, hasher.hexdigest()
+    return seen, rows, hasher.hexdigest()
 
 
-def rows_digest(spec: DatabaseSpec) -> str:
-    """Run the query and return the SHA-256 of its rows (see `RowHasher`)."""
-    return _fetch(spec, keep=False)[2]
+def rows_digest(spec: DatabaseSpec, columns: Sequence[str]) -> str:
+    """Run the query and return the SHA-256 of its rows (see `RowHasher`).
+
+    Raises
+    ------
+    PanelpipeError
+        As `read_database` does, so that a bad query stops a run before it starts.
+    """
+    return _fetch(spec, columns, keep=False)[2]
 
 
 def read_database(
@@ -280,26 +311,12 @@ def read_database(
         returns no rows, a column is missing, or the rows differ from
         ``spec.expect`` (when set), naming the database and the query.
     """
-    names, rows, digest = _fetch(spec, keep=True)
+    seen, rows, digest = _fetch(spec, columns, keep=True)
     if spec.expect and digest != spec.expect:
         raise PanelpipeError(
             f"{_where(spec)}: the rows the query returns changed while the run was reading "
             f"them (SHA-256 {spec.expect[:12]}... when the run was planned, {digest[:12]}... "
             "now). The table may still be loading: wait until it is complete, then run again."
-        )
-    unknown = sorted(set(spec.rename) - set(names))
-    if unknown:
-        raise PanelpipeError(
-            f"{_where(spec)}: 'rename' names column(s) {', '.join(map(repr, unknown))} that "
-            f"the result does not have; it has {', '.join(map(repr, names))}."
-        )
-    seen = [spec.rename.get(c, c) for c in names]
-    missing = [c for c in columns if c not in seen]
-    if missing:
-        raise PanelpipeError(
-            f"{_where(spec)}: column(s) {', '.join(map(repr, missing))} not in the result; "
-            f"it has {', '.join(map(repr, names))}. Select them in the query, or map a "
-            "column of another name with 'rename' on this source."
         )
     index = {name: i for i, name in enumerate(seen)}
     frame = pd.DataFrame(index=pd.RangeIndex(len(rows)))
