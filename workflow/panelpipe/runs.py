@@ -172,11 +172,11 @@ def plan_runs(config: Mapping[str, Any]) -> dict[str, RunPlan]:
         digests, ident = [], []
         for item in source_entries(settings.sources, analysis=name):
             if isinstance(item, DatabaseSpec):
-                label, digest, options = (
-                    item.label,
-                    rows_digest(item, settings.columns),
-                    item.options,
-                )
+                try:
+                    digest = rows_digest(item, settings.columns)
+                except PanelpipeError as err:
+                    raise PanelpipeError(f"analysis {name!r}: {err}") from None
+                label, options = item.label, item.options
             else:
                 label, digest, options = str(item[0]), file_digest(item[0]), item[1]
             digests.append((label, digest))
