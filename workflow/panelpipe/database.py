@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import decimal
 import hashlib
+import marshal
 import os
 import sqlite3
 import stat
@@ -83,19 +84,28 @@ class RowHasher:
     Notes
     -----
     The hash covers, in order: the column names with the type the engine
-    reports for each (PostgreSQL's type name; SQLite reports none), then every
-    row as ``repr`` of its tuple of Python values, one per line. ``repr`` keeps
-    the type of each value (``1``, ``1.0``, ``'1'`` and ``Decimal('1.0')`` differ)
-    and writes floats exactly (shortest round-trip digits), so one changed cell,
-    a changed type or a changed row order gives another hash, and the same rows
-    give the same hash on every machine with the same driver.
+    reports for each (PostgreSQL's type name; SQLite reports none), then the
+    rows in the order the query returns them, in chunks of :data:`CHUNK_ROWS`.
+    A chunk of plain values (integers, floats, text, bytes, NULL) is encoded with
+    Python's ``marshal`` format version 2, which writes each value with its type
+    and floats as their exact 8 bytes and shares no objects between values, so
+    equal rows always give equal bytes; a chunk holding other values (exact
+    decimals, dates) is encoded as the ``repr`` of each row, which also keeps
+    each value's type and exact digits. One changed cell, a changed type or a
+    changed row order therefore gives another hash, and the same rows give the
+    same hash on every machine with the same driver.
     """
 
     def __init__(self, names: Sequence[str], types: Sequence[str]) -> None:
         self._h = hashlib.sha256(repr([list(names), list(types)]).encode())
 
     def update(self, rows: Sequence[tuple[Any, ...]]) -> None:
-        self._h.update("".join(f"{row!r}\n" for row in rows).encode())
+        try:
+            blob = b"M" + marshal.dumps(list(rows), 2)
+        except ValueError:  # a value marshal cannot write
+            blob = b"R" + "".join(f"{row!r}\n" for row in rows).encode()
+        self._h.update(len(blob).to_bytes(8, "little"))
+        self._h.update(blob)
 
     def hexdigest(self) -> str:
         return self._h.hexdigest()
@@ -318,19 +328,21 @@ def read_database(
             f"them (SHA-256 {spec.expect[:12]}... when the run was planned, {digest[:12]}... "
             "now). The table may still be loading: wait until it is complete, then run again."
         )
-    index = {name: i for i, name in enumerate(seen)}
+    by_name = dict(zip(seen, zip(*rows, strict=True), strict=True))
     frame = pd.DataFrame(index=pd.RangeIndex(len(rows)))
     for col in columns:
-        values = [row[index[col]] for row in rows]
+        values = by_name[col]
+        kinds = set(map(type, values))
         if col in text:
             # From the values themselves: an integer column with NULLs stays "2020", not "2020.0".
-            frame[col] = pd.array([None if v is None else str(v) for v in values], dtype="string")
+            if not kinds <= {str, type(None)}:
+                values = tuple(None if v is None else str(v) for v in values)
+            frame[col] = pd.array(values, dtype="string")
+        elif kinds <= {int, float, decimal.Decimal, type(None)}:
+            # Exact numerics (NUMERIC) are read as floats, like a number in a CSV file.
+            frame[col] = pd.to_numeric(pd.Series(values, dtype=object))
         else:
             frame[col] = pd.Series(values, dtype=object).infer_objects()
-            if frame[col].dtype == object and all(
-                v is None or isinstance(v, (int, float, decimal.Decimal)) for v in values
-            ):
-                frame[col] = pd.to_numeric(frame[col])  # exact numerics (NUMERIC) as numbers
     frame["_source"] = spec.label
     frame["_line"] = pd.RangeIndex(1, len(rows) + 1)
     return frame
