@@ -1,9 +1,10 @@
 """Database sources: the rows a query returns from PostgreSQL or SQLite.
 
 A ``{database, query}`` entry of ``sources`` is read with the query as written,
-in a read-only session (PostgreSQL: a read-only transaction through a server-side
-cursor; SQLite: the file opened read-only, so a missing file is never created),
-fetched in chunks of :data:`CHUNK_ROWS` rows.
+in a read-only session (PostgreSQL: a read-only transaction that sees one
+snapshot; SQLite: the file opened read-only, so a missing file is never created),
+fetched in chunks (SQLite: :data:`CHUNK_ROWS` rows at a time; PostgreSQL: the
+CSV stream of ``COPY (query) TO STDOUT``, as the server sends it).
 
 The password never enters panelpipe: libpq reads it from ``PGPASSWORD`` or the
 password file (``~/.pgpass``, or ``PGPASSFILE``). A URL that carries one is
@@ -29,9 +30,11 @@ import stat
 import urllib.parse
 from collections.abc import Iterator, Sequence
 from contextlib import closing, contextmanager
-from typing import Any
+from typing import Any, cast
 
 import pandas as pd
+import pyarrow as pa
+import pyarrow.csv as pacsv
 
 from .config import DatabaseSpec
 from .findings import PanelpipeError
@@ -86,7 +89,9 @@ class RowHasher:
     The hash covers, in order: the column names with the type the engine
     reports for each (PostgreSQL's type name; SQLite reports none), then the
     rows in the order the query returns them, in chunks of :data:`CHUNK_ROWS`.
-    A chunk of plain values (integers, floats, text, bytes, NULL) is encoded with
+    SQLite's rows are fetched as Python values; PostgreSQL's arrive as the CSV
+    text the server writes (`update_text`, see ``_fetch_postgres``). From SQLite,
+    a chunk of plain values (integers, floats, text, bytes, NULL) is encoded with
     Python's ``marshal`` format version 2, which writes each value with its type
     and floats as their exact 8 bytes and shares no objects between values, so
     equal rows always give equal bytes; a chunk holding other values (exact
@@ -98,6 +103,7 @@ class RowHasher:
 
     def __init__(self, names: Sequence[str], types: Sequence[str]) -> None:
         self._h = hashlib.sha256(repr([list(names), list(types)]).encode())
+        self.size = 0  # rows (or bytes of text) hashed: zero for an empty result
 
     def update(self, rows: Sequence[tuple[Any, ...]]) -> None:
         try:
@@ -106,6 +112,12 @@ class RowHasher:
             blob = b"R" + "".join(f"{row!r}\n" for row in rows).encode()
         self._h.update(len(blob).to_bytes(8, "little"))
         self._h.update(blob)
+        self.size += len(rows)
+
+    def update_text(self, data: bytes) -> None:
+        """Rows as text the server wrote (PostgreSQL's CSV output), hashed as they come."""
+        self._h.update(data)
+        self.size += len(data)
 
     def hexdigest(self) -> str:
         return self._h.hexdigest()
@@ -192,8 +204,32 @@ def server_of(spec: DatabaseSpec) -> dict[str, str]:
     }
 
 
+# Fixed for the session so that the server writes every value the same way
+# whatever its own defaults: the hashed CSV text is then canonical.
+_SESSION = (
+    "SET client_encoding = 'UTF8'",
+    "SET DateStyle = 'ISO, YMD'",
+    "SET IntervalStyle = 'iso_8601'",
+    "SET TimeZone = 'UTC'",
+    "SET extra_float_digits = 1",
+    "SET bytea_output = 'hex'",
+)
+
+_ARROW_TYPES = {
+    "smallint": pa.int64(),
+    "integer": pa.int64(),
+    "bigint": pa.int64(),
+    "real": pa.float64(),
+    "double precision": pa.float64(),
+    "numeric": pa.float64(),
+    "boolean": pa.bool_(),
+}
+"""How a PostgreSQL column is parsed from its CSV text (any other type: as text)."""
+
+
 @contextmanager
-def _postgres_cursor(spec: DatabaseSpec) -> Iterator[Any]:
+def _postgres_session(spec: DatabaseSpec) -> Iterator[Any]:
+    """A read-only, repeatable-read transaction: every statement sees one snapshot."""
     import psycopg
 
     _postgres_password_refused(spec)
@@ -213,10 +249,10 @@ def _postgres_cursor(spec: DatabaseSpec) -> Iterator[Any]:
     try:
         with conn:
             conn.read_only = True  # the delivery is only ever read
-            with conn.cursor(name="panelpipe_rows", binary=True) as cur:
-                cur.itersize = CHUNK_ROWS
-                cur.execute(spec.query)
-                yield cur
+            conn.isolation_level = psycopg.IsolationLevel.REPEATABLE_READ
+            for statement in _SESSION:
+                conn.execute(statement)
+            yield conn
     except psycopg.Error as exc:
         reason = " ".join(str(exc).split())
         raise PanelpipeError(
@@ -226,24 +262,14 @@ def _postgres_cursor(spec: DatabaseSpec) -> Iterator[Any]:
         conn.close()
 
 
-@contextmanager
-def _cursor(spec: DatabaseSpec) -> Iterator[Any]:
-    if spec.database.startswith("sqlite:"):
-        with _sqlite_cursor(spec) as cur:
-            yield cur
-    else:
-        with _postgres_cursor(spec) as cur:
-            yield cur
-
-
-def _header(spec: DatabaseSpec, cur: Any) -> tuple[list[str], list[str]]:
-    if cur.description is None:
+def _header(spec: DatabaseSpec, description: Any) -> tuple[list[str], list[str]]:
+    if description is None:
         raise PanelpipeError(
             f"{_where(spec)}: the statement returns no rows (it is not a query). Write a "
             "SELECT that returns the panel's rows."
         )
-    names = [str(col[0]) for col in cur.description]
-    types = [str(getattr(col, "type_display", "") or "") for col in cur.description]
+    names = [str(col[0]) for col in description]
+    types = [str(getattr(col, "type_display", "") or "") for col in description]
     repeated = sorted({n for n in names if names.count(n) > 1})
     if repeated:
         raise PanelpipeError(
@@ -272,29 +298,100 @@ def _named(spec: DatabaseSpec, names: Sequence[str], columns: Sequence[str]) -> 
     return seen
 
 
-def _fetch(
+def _empty(spec: DatabaseSpec) -> PanelpipeError:
+    return PanelpipeError(
+        f"{_where(spec)}: the query returned no rows. Check the query (a WHERE clause "
+        "that selects nothing, an empty table), or remove the entry from 'sources'."
+    )
+
+
+def _fetch_postgres(
+    spec: DatabaseSpec, columns: Sequence[str], text: Sequence[str], *, keep: bool
+) -> tuple[pa.Table | None, str]:
+    """Run the query: its rows as an Arrow table (if ``keep``), and their hash.
+
+    The header (names and types) comes from a cursor declared on the query; the
+    rows stream as CSV through ``COPY (query) TO STDOUT`` in the same snapshot,
+    chunk by chunk, and pyarrow parses them (NULL is an unquoted empty field,
+    an empty text a quoted one). The hash is `RowHasher`'s header followed by
+    that CSV text, which the session settings above make canonical.
+    """
+    from psycopg import sql
+
+    chunks: list[bytes] = []
+    with _postgres_session(spec) as conn:
+        with conn.cursor(name="panelpipe_header") as cur:
+            cur.execute(spec.query)
+            names, types = _header(spec, cur.description)
+        seen = _named(spec, names, columns)
+        hasher = RowHasher(names, types)
+        query = spec.query.strip().rstrip(";")
+        copy_sql = sql.SQL("COPY ({}) TO STDOUT WITH (FORMAT csv)").format(sql.SQL(query))
+        with conn.cursor() as cur, cur.copy(copy_sql) as copy:
+            # The server sends one message per row: they are joined CHUNK_ROWS at a time.
+            pending: list[bytes | memoryview] = []
+            for row in copy:
+                pending.append(row)
+                if len(pending) == CHUNK_ROWS:
+                    chunks.append(b"".join(pending))
+                    pending.clear()
+                    hasher.update_text(chunks[-1])
+                    if not keep:
+                        chunks.clear()
+            chunks.append(b"".join(pending))
+            hasher.update_text(chunks[-1])
+    if not hasher.size:
+        raise _empty(spec)
+    if not keep:
+        return None, hasher.hexdigest()
+    wanted = {c: names[seen.index(c)] for c in columns}
+    kinds = dict(zip(names, types, strict=True))
+    convert = pacsv.ConvertOptions(
+        include_columns=list(wanted.values()),
+        column_types={
+            name: pa.string()
+            if col in text
+            else _ARROW_TYPES.get(kinds[name].split("(")[0], pa.string())
+            for col, name in wanted.items()
+        },
+        null_values=[""],
+        strings_can_be_null=True,
+        quoted_strings_can_be_null=False,
+        true_values=["t"],
+        false_values=["f"],
+    )
+    try:
+        table = pacsv.read_csv(
+            pa.BufferReader(b"".join(chunks)),
+            read_options=pacsv.ReadOptions(column_names=names),
+            parse_options=pacsv.ParseOptions(newlines_in_values=True),
+            convert_options=convert,
+        )
+    except pa.ArrowInvalid as exc:
+        raise PanelpipeError(
+            f"{_where(spec)}: the rows could not be read ({exc}). Cast the column in the query "
+            "(e.g. CAST(x AS double precision)) or report it as a bug."
+        ) from exc
+    return table.rename_columns([seen[names.index(c)] for c in table.column_names]), (
+        hasher.hexdigest()
+    )
+
+
+def _fetch_sqlite(
     spec: DatabaseSpec, columns: Sequence[str], *, keep: bool
 ) -> tuple[list[str], list[tuple[Any, ...]], str]:
-    """Run the query: names (after 'rename'), rows (if ``keep``) and the rows' hash.
-
-    A missing column is refused from the header, before any row is fetched.
-    """
+    """Run the query: names (after 'rename'), rows (if ``keep``) and the rows' hash."""
     rows: list[tuple[Any, ...]] = []
-    n = 0
-    with _cursor(spec) as cur:
-        names, types = _header(spec, cur)
+    with _sqlite_cursor(spec) as cur:
+        names, types = _header(spec, cur.description)
         seen = _named(spec, names, columns)
         hasher = RowHasher(names, types)
         while chunk := cur.fetchmany(CHUNK_ROWS):
             hasher.update(chunk)
-            n += len(chunk)
             if keep:
                 rows.extend(chunk)
-    if n == 0:
-        raise PanelpipeError(
-            f"{_where(spec)}: the query returned no rows. Check the query (a WHERE clause "
-            "that selects nothing, an empty table), or remove the entry from 'sources'."
-        )
+    if not hasher.size:
+        raise _empty(spec)
     return seen, rows, hasher.hexdigest()
 
 
@@ -306,28 +403,14 @@ def rows_digest(spec: DatabaseSpec, columns: Sequence[str]) -> str:
     PanelpipeError
         As `read_database` does, so that a bad query stops a run before it starts.
     """
-    return _fetch(spec, columns, keep=False)[2]
+    if spec.database.startswith("sqlite:"):
+        return _fetch_sqlite(spec, columns, keep=False)[2]
+    return _fetch_postgres(spec, columns, (), keep=False)[1]
 
 
-def read_database(
-    spec: DatabaseSpec, columns: Sequence[str], *, text: Sequence[str]
+def _frame_of_rows(
+    seen: Sequence[str], rows: list[tuple[Any, ...]], columns: Sequence[str], text: Sequence[str]
 ) -> pd.DataFrame:
-    """Read the named columns of a query's result; ``text`` columns are kept as text.
-
-    Raises
-    ------
-    PanelpipeError
-        If the server cannot be reached, refuses the login, the query fails or
-        returns no rows, a column is missing, or the rows differ from
-        ``spec.expect`` (when set), naming the database and the query.
-    """
-    seen, rows, digest = _fetch(spec, columns, keep=True)
-    if spec.expect and digest != spec.expect:
-        raise PanelpipeError(
-            f"{_where(spec)}: the rows the query returns changed while the run was reading "
-            f"them (SHA-256 {spec.expect[:12]}... when the run was planned, {digest[:12]}... "
-            "now). The table may still be loading: wait until it is complete, then run again."
-        )
     by_name = dict(zip(seen, zip(*rows, strict=True), strict=True))
     frame = pd.DataFrame(index=pd.RangeIndex(len(rows)))
     for col in columns:
@@ -343,6 +426,35 @@ def read_database(
             frame[col] = pd.to_numeric(pd.Series(values, dtype=object))
         else:
             frame[col] = pd.Series(values, dtype=object).infer_objects()
+    return frame
+
+
+def read_database(
+    spec: DatabaseSpec, columns: Sequence[str], *, text: Sequence[str]
+) -> pd.DataFrame:
+    """Read the named columns of a query's result; ``text`` columns are kept as text.
+
+    Raises
+    ------
+    PanelpipeError
+        If the server cannot be reached, refuses the login, the query fails or
+        returns no rows, a column is missing, or the rows differ from
+        ``spec.expect`` (when set), naming the database and the query.
+    """
+    if spec.database.startswith("sqlite:"):
+        seen, rows, digest = _fetch_sqlite(spec, columns, keep=True)
+        frame = _frame_of_rows(seen, rows, columns, text)
+    else:
+        table, digest = _fetch_postgres(spec, columns, text, keep=True)
+        frame = cast(pa.Table, table).to_pandas()[list(columns)]
+        for col in text:
+            frame[col] = frame[col].astype("string")
+    if spec.expect and digest != spec.expect:
+        raise PanelpipeError(
+            f"{_where(spec)}: the rows the query returns changed while the run was reading "
+            f"them (SHA-256 {spec.expect[:12]}... when the run was planned, {digest[:12]}... "
+            "now). The table may still be loading: wait until it is complete, then run again."
+        )
     frame["_source"] = spec.label
-    frame["_line"] = pd.RangeIndex(1, len(rows) + 1)
+    frame["_line"] = pd.RangeIndex(1, len(frame) + 1)
     return frame
