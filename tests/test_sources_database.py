@@ -305,3 +305,18 @@ def test_a_table_changed_while_the_run_starts_is_refused(
     assert not (run_dir / "work" / "raw.parquet").exists()
     assert not (run_dir / "report.html").exists()
     _no_password_anywhere(tmp_path / "out", out, err)
+
+
+def test_validation_names_the_database_and_row(tmp_path: Path) -> None:
+    rows = hostile_table()
+    rows[4] = (*rows[4][:2], "twelve", *rows[4][3:])  # row 5 of the result
+    create = CREATE.replace("jobs INTEGER", "jobs TEXT")
+    fill_sqlite(tmp_path / "a.db", rows, create)
+    config = write_hostile_config(
+        tmp_path, hostile_analysis(sources=[{"database": "sqlite:///a.db", "query": QUERY}])
+    )
+    done = run_panelpipe(tmp_path, "check", "--config", str(config))
+    assert done.returncode == 1, done.stderr[-3000:]
+    assert "non_numeric" in done.stderr
+    assert "sqlite:///a.db, row 5" in done.stderr
+    assert "Traceback" not in done.stderr
