@@ -197,6 +197,7 @@ def _status(done: subprocess.CompletedProcess[str]) -> dict[str, Any]:
 
 
 def _no_password_anywhere(folder: Path, *outputs: str) -> None:
+    """Not in any file under ``folder`` (run folders, Snakemake's .snakemake), nor output."""
     secret = PASSWORD.encode()
     for path in folder.rglob("*"):
         if path.is_file():
@@ -208,8 +209,9 @@ def _no_password_anywhere(folder: Path, *outputs: str) -> None:
 @pytest.mark.slow
 @pytest.mark.parametrize("engine", ["sqlite", "postgresql"])
 def test_an_unchanged_table_is_unchanged_and_one_updated_cell_is_a_new_run(
-    engine: str, postgres: Any, tmp_path: Path, with_password: None
+    engine: str, tmp_path: Path, with_password: None, request: pytest.FixtureRequest
 ) -> None:
+    postgres: Any = request.getfixturevalue("postgres") if engine == "postgresql" else None
     if engine == "sqlite":
         fill_sqlite(tmp_path / "a.db", hostile_table())
         url = "sqlite:///a.db"
@@ -260,7 +262,7 @@ def test_an_unchanged_table_is_unchanged_and_one_updated_cell_is_a_new_run(
         assert record["server"] == f"127.0.0.1:{postgres.port}"
         assert record["database"] == "stats"
     outputs = [d.stdout + d.stderr for d in (first, again, revised)]
-    _no_password_anywhere(tmp_path / "out", *outputs)
+    _no_password_anywhere(tmp_path, *outputs)
 
 
 @pytest.mark.slow
@@ -304,7 +306,7 @@ def test_a_table_changed_while_the_run_starts_is_refused(
     )
     assert not (run_dir / "work" / "raw.parquet").exists()
     assert not (run_dir / "report.html").exists()
-    _no_password_anywhere(tmp_path / "out", out, err)
+    _no_password_anywhere(tmp_path, out, err)
 
 
 def test_validation_names_the_database_and_row(tmp_path: Path) -> None:
