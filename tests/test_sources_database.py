@@ -322,3 +322,12 @@ def test_validation_names_the_database_and_row(tmp_path: Path) -> None:
     assert "non_numeric" in done.stderr
     assert "sqlite:///a.db, row 5" in done.stderr
     assert "Traceback" not in done.stderr
+
+
+@pytest.mark.slow
+def test_a_query_ending_in_a_comment_or_semicolon_reads(postgres: Any, with_password: None) -> None:
+    fill_postgres(postgres.admin(), hostile_table())
+    url = postgres.url()
+    for query in (QUERY + " -- every region", QUERY + ";\n"):
+        frame = read_database(DatabaseSpec(url, query, url), COLUMNS, text=["region"])
+        assert len(frame) == 36 and frame["jobs"].dtype == np.int64

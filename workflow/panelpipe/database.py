@@ -325,8 +325,10 @@ def _fetch_postgres(
             names, types = _header(spec, cur.description)
         seen = _named(spec, names, columns)
         hasher = RowHasher(names, types)
-        query = spec.query.strip().rstrip(";")
-        copy_sql = sql.SQL("COPY ({}) TO STDOUT WITH (FORMAT csv)").format(sql.SQL(query))
+        # A final semicolon cannot stand inside COPY (...), and a final "-- comment"
+        # would hide the closing parenthesis were it on the same line.
+        query = spec.query.strip().rstrip(";").rstrip()
+        copy_sql = sql.SQL("COPY ({}\n) TO STDOUT WITH (FORMAT csv)").format(sql.SQL(query))
         with conn.cursor() as cur, cur.copy(copy_sql) as copy:
             # The server sends one message per row: they are joined CHUNK_ROWS at a time.
             pending: list[bytes | memoryview] = []
