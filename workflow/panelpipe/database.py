@@ -216,15 +216,16 @@ _SESSION = (
 )
 
 _ARROW_TYPES = {
-    "smallint": pa.int64(),
-    "integer": pa.int64(),
-    "bigint": pa.int64(),
-    "real": pa.float64(),
-    "double precision": pa.float64(),
+    "int2": pa.int64(),
+    "int4": pa.int64(),
+    "int8": pa.int64(),
+    "float4": pa.float64(),
+    "float8": pa.float64(),
     "numeric": pa.float64(),
-    "boolean": pa.bool_(),
+    "bool": pa.bool_(),
 }
-"""How a PostgreSQL column is parsed from its CSV text (any other type: as text)."""
+"""How a PostgreSQL column is parsed from its CSV text, by the type name psycopg
+reports (any other type is read as text, which validation reads as it reads a CSV)."""
 
 
 @contextmanager
