@@ -51,7 +51,8 @@ __all__ = [
 ]
 
 CHUNK_ROWS = 50_000
-"""Rows fetched per round trip: a few megabytes, whatever the size of the result."""
+"""Rows handled at a time (fetched from SQLite, joined from PostgreSQL's stream): a few
+megabytes, whatever the size of the result."""
 
 LABEL_PREFIXES = ("postgresql://", "postgres://", "sqlite://")
 """How a database source's label starts (a file path never does)."""
