@@ -118,3 +118,17 @@ def earlier_run(earlier_run_template: Path, tmp_path: Path) -> Callable[[], Any]
         return check
 
     return start
+
+
+@pytest.fixture(scope="session")
+def postgres() -> Any:
+    """A throwaway PostgreSQL server for the session (tests/_postgres.py), always stopped."""
+    import _postgres
+
+    server = _postgres.start()
+    if isinstance(server, str):
+        pytest.skip(server)
+    try:
+        yield server
+    finally:
+        server.stop()

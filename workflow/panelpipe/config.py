@@ -39,11 +39,13 @@ __all__ = [
     "RESERVED_PREFIXES",
     "SCHEMA_PATH",
     "AnalysisSettings",
+    "DatabaseSpec",
     "SourceSpec",
     "analysis_settings",
     "file_kind",
     "load_config",
     "resolve_sources",
+    "source_entries",
     "source_files",
     "source_spec_of",
     "source_specs",
@@ -476,6 +478,34 @@ def _entry_path(entry: str | Mapping[str, Any]) -> str:
     return entry if isinstance(entry, str) else str(entry["path"])
 
 
+def _is_database(entry: Any) -> bool:
+    return isinstance(entry, Mapping) and "database" in entry
+
+
+@dataclass(frozen=True)
+class DatabaseSpec:
+    """A ``{database, query}`` source: rows a query returns, not a file.
+
+    ``label`` names the source in every message and in the rows' ``_source``
+    column: the URL as written (a URL carrying a password is refused before any
+    connection, see `panelpipe.database`), followed by ``[query N]`` when one
+    database serves several queries of the analysis. ``expect`` is the SHA-256 of
+    the rows as planned (empty when not yet planned); a read that returns other
+    rows refuses the run.
+    """
+
+    database: str
+    query: str
+    label: str
+    rename: Mapping[str, str] = field(default_factory=dict)
+    expect: str = ""
+
+    @property
+    def options(self) -> dict[str, Any]:
+        """What the run id hashes besides the rows (the URL, like a file's path, is not)."""
+        return {"query": self.query, "rename": dict(self.rename)}
+
+
 _KINDS = (
     (stat.S_ISDIR, "a folder"),
     (stat.S_ISFIFO, "a named pipe"),
@@ -518,43 +548,34 @@ def _check_regular(path: Path, pattern: str, analysis: str) -> None:
         )
 
 
-def source_files(
-    sources: tuple[Any, ...] | list[Any], *, analysis: str
+def _entry_files(
+    entry: str | Mapping[str, Any], analysis: str
 ) -> list[tuple[Path, dict[str, Any]]]:
-    """Every source file in reading order, with the options of its entry.
+    """The files one (file) entry of 'sources' names, with the entry's options."""
+    pattern = _entry_path(entry)
+    options = {} if isinstance(entry, str) else {k: v for k, v in entry.items() if k != "path"}
+    if glob.has_magic(pattern):
+        matches = sorted(glob.glob(pattern))
+        if not matches:
+            raise PanelpipeError(
+                f"analysis {analysis!r}: the source pattern {pattern!r} matches no file "
+                f"(looked from {Path.cwd()}); check the path in 'sources'."
+            )
+    else:
+        if not os.path.lexists(pattern):
+            raise PanelpipeError(
+                f"analysis {analysis!r}: the source file {pattern!r} does not exist "
+                f"(looked from {Path.cwd()}); check the path in 'sources'."
+            )
+        matches = [pattern]
+    for match in matches:
+        _check_regular(Path(match), pattern, analysis)
+    return [(Path(match), options) for match in matches]
 
-    Globs are expanded and their matches sorted by name so that yearly files
-    stack in order. The options are the entry's keys except ``path`` (empty for
-    a plain path): everything that shapes how the file is read.
 
-    Raises
-    ------
-    PanelpipeError
-        If a path or pattern finds nothing, a match is not a regular readable
-        file, a file is of no kind `file_kind` knows, a workbook option is given
-        for another kind of file, or a file is listed twice.
-    """
-    files: list[tuple[Path, dict[str, Any]]] = []
-    for entry in sources:
-        pattern = _entry_path(entry)
-        options = {} if isinstance(entry, str) else {k: v for k, v in entry.items() if k != "path"}
-        if glob.has_magic(pattern):
-            matches = sorted(glob.glob(pattern))
-            if not matches:
-                raise PanelpipeError(
-                    f"analysis {analysis!r}: the source pattern {pattern!r} matches no file "
-                    f"(looked from {Path.cwd()}); check the path in 'sources'."
-                )
-        else:
-            if not os.path.lexists(pattern):
-                raise PanelpipeError(
-                    f"analysis {analysis!r}: the source file {pattern!r} does not exist "
-                    f"(looked from {Path.cwd()}); check the path in 'sources'."
-                )
-            matches = [pattern]
-        for match in matches:
-            _check_regular(Path(match), pattern, analysis)
-            files.append((Path(match), options))
+def _check_files(files: list[tuple[Path, dict[str, Any]]], analysis: str) -> None:
+    """Refuse a file of no kind `file_kind` knows, workbook options on another kind of
+    file, and a file listed twice."""
     for p, options in files:
         kind = file_kind(p)
         if kind is None:
@@ -574,7 +595,61 @@ def source_files(
             f"analysis {analysis!r}: the same file is listed twice in 'sources': "
             f"{', '.join(repeated)}."
         )
-    return files
+
+
+def _database_specs(sources: tuple[Any, ...] | list[Any], analysis: str) -> list[DatabaseSpec]:
+    """The database entries of 'sources' in order, labelled (see `DatabaseSpec`)."""
+    entries = [e for e in sources if _is_database(e)]
+    urls = [str(e["database"]) for e in entries]
+    pairs = [(u, str(e["query"])) for u, e in zip(urls, entries, strict=True)]
+    repeated = sorted({f"{u} {q!r}" for u, q in pairs if pairs.count((u, q)) > 1})
+    if repeated:
+        raise PanelpipeError(
+            f"analysis {analysis!r}: the same database query is listed twice in 'sources': "
+            f"{_cut(', '.join(repeated))}."
+        )
+    specs = []
+    for i, (url, entry) in enumerate(zip(urls, entries, strict=True)):
+        label = url if urls.count(url) == 1 else f"{url} [query {urls[: i + 1].count(url)}]"
+        specs.append(DatabaseSpec(url, str(entry["query"]), label, dict(entry.get("rename") or {})))
+    return specs
+
+
+def source_entries(
+    sources: tuple[Any, ...] | list[Any], *, analysis: str
+) -> list[tuple[Path, dict[str, Any]] | DatabaseSpec]:
+    """Every source in reading order: (file, options of its entry) or a `DatabaseSpec`.
+
+    Globs are expanded and their matches sorted by name so that yearly files
+    stack in order. A file's options are its entry's keys except ``path`` (empty
+    for a plain path): everything that shapes how the file is read.
+
+    Raises
+    ------
+    PanelpipeError
+        If a path or pattern finds nothing, a match is not a regular readable
+        file, a file is of no kind `file_kind` knows, a workbook option is given
+        for another kind of file, or a file or query is listed twice.
+    """
+    databases = iter(_database_specs(sources, analysis))
+    out: list[tuple[Path, dict[str, Any]] | DatabaseSpec] = []
+    for entry in sources:
+        if _is_database(entry):
+            out.append(next(databases))
+        else:
+            out.extend(_entry_files(entry, analysis))
+    _check_files([item for item in out if not isinstance(item, DatabaseSpec)], analysis)
+    return out
+
+
+def source_files(
+    sources: tuple[Any, ...] | list[Any], *, analysis: str
+) -> list[tuple[Path, dict[str, Any]]]:
+    """Every source file in reading order, with its options (see `source_entries`).
+
+    Database entries are not files and are left out.
+    """
+    return [item for item in source_entries(sources, analysis=analysis) if isinstance(item, tuple)]
 
 
 def resolve_sources(sources: tuple[Any, ...] | list[Any], *, analysis: str) -> list[Path]:
@@ -671,6 +746,8 @@ def source_spec_of(
     """
     parts = Path(path).parts
     for entry in sources:
+        if _is_database(entry):
+            continue
         pattern = Path(_entry_path(entry)).parts
         if len(pattern) == len(parts) and all(
             fnmatch.fnmatchcase(p, q) for p, q in zip(parts, pattern, strict=True)
@@ -681,9 +758,15 @@ def source_spec_of(
 
 def source_specs(
     sources: tuple[Any, ...] | list[Any], csv: Mapping[str, Any], *, analysis: str
-) -> list[SourceSpec]:
-    """Every source file with its reading options (analysis defaults, then per source)."""
-    specs: list[SourceSpec] = []
-    for path, options in source_files(sources, analysis=analysis):
-        specs.append(SourceSpec(path, **_entry_options(options, csv)))
+) -> list[SourceSpec | DatabaseSpec]:
+    """Every source in reading order: a file with its options, or a database query.
+
+    A file's options are the analysis defaults, overridden by its entry's.
+    """
+    specs: list[SourceSpec | DatabaseSpec] = []
+    for item in source_entries(sources, analysis=analysis):
+        if isinstance(item, DatabaseSpec):
+            specs.append(item)
+        else:
+            specs.append(SourceSpec(item[0], **_entry_options(item[1], csv)))
     return specs

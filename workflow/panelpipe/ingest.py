@@ -46,7 +46,8 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import python_calamine
 
-from .config import SourceSpec, file_kind
+from .config import DatabaseSpec, SourceSpec, file_kind
+from .database import LABEL_PREFIXES, read_database
 from .findings import PanelpipeError
 
 __all__ = [
@@ -84,9 +85,11 @@ def source_path(label: str) -> str:
 
 
 def place(label: object, line: object) -> str:
-    """A row's place for messages: 'FILE line N', or 'FILE, sheet S, row N'."""
+    """A row's place for messages: 'FILE line N', 'FILE, sheet S, row N' or 'DATABASE, row N'."""
     text = str(label)
-    return f"{text}, row {line}" if source_path(text) != text else f"{text} line {line}"
+    if source_path(text) != text or text.startswith(LABEL_PREFIXES):
+        return f"{text}, row {line}"
+    return f"{text} line {line}"
 
 
 def _delimiter(spec: SourceSpec) -> str:
@@ -653,8 +656,10 @@ def read_as_text(spec: SourceSpec) -> pd.DataFrame:
     return frame
 
 
-def read_source(spec: SourceSpec, columns: Sequence[str], *, text: Sequence[str]) -> pd.DataFrame:
-    """Read the named columns of one file; ``text`` columns are kept as text.
+def read_source(
+    spec: SourceSpec | DatabaseSpec, columns: Sequence[str], *, text: Sequence[str]
+) -> pd.DataFrame:
+    """Read the named columns of one file or query; ``text`` columns are kept as text.
 
     Raises
     ------
@@ -663,6 +668,8 @@ def read_source(spec: SourceSpec, columns: Sequence[str], *, text: Sequence[str]
         data rows or lacks a column, naming the file and, where there is one, the
         line, or the sheet and cell.
     """
+    if isinstance(spec, DatabaseSpec):
+        return read_database(spec, columns, text=text)
     source = _open(spec)
     path, available = source.label, source.header
     renamed = {old: new for old, new in spec.rename.items() if old in available}
@@ -689,7 +696,7 @@ def read_source(spec: SourceSpec, columns: Sequence[str], *, text: Sequence[str]
 
 
 def read_panel(
-    specs: Sequence[SourceSpec], columns: Sequence[str], *, text: Sequence[str]
+    specs: Sequence[SourceSpec | DatabaseSpec], columns: Sequence[str], *, text: Sequence[str]
 ) -> pd.DataFrame:
     """Read every source and stack them in the order given.
 

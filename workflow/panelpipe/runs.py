@@ -29,7 +29,7 @@ from pathlib import Path
 from typing import Any, Literal
 
 from . import __version__
-from .config import REPO_ROOT, analysis_settings, source_files
+from .config import REPO_ROOT, DatabaseSpec, analysis_settings, source_entries
 from .findings import PanelpipeError
 
 __all__ = [
@@ -122,10 +122,13 @@ def code_fingerprint(root: Path = REPO_ROOT) -> str:
 def run_id(inputs: Iterable[Mapping[str, Any]], settings: Mapping[str, Any], code: str) -> str:
     """The run id: 16 hex digits of a hash over inputs, settings and code.
 
-    ``inputs`` holds, per source file in reading order, its ``sha256`` and the
+    ``inputs`` holds, per source in reading order, its ``sha256`` and the
     ``options`` of its ``sources`` entry (every key but ``path``), so that any
     reading option, including one added later, is part of the id. Paths are not
-    hashed: moving a delivery to another folder does not start a new run.
+    hashed: moving a delivery to another folder does not start a new run. For a
+    database source the hash is that of the rows the query returned
+    (`panelpipe.database.RowHasher`) and the options are the query and renames;
+    the URL, like a path, is not hashed.
     """
     payload = {
         "inputs": [dict(i) for i in inputs],
@@ -140,8 +143,9 @@ def run_id(inputs: Iterable[Mapping[str, Any]], settings: Mapping[str, Any], cod
 class RunPlan:
     """The run an analysis's current inputs and settings make.
 
-    ``inputs`` lists (path, sha256) of every source file in reading order, as
-    hashed when the run was planned; the ingest step reads nothing else.
+    ``inputs`` lists (path, sha256) of every source in reading order, as hashed
+    when the run was planned (a database source: its label and the hash of the
+    rows its query returned); the ingest step reads nothing else.
     """
 
     analysis: str
@@ -153,22 +157,36 @@ class RunPlan:
 
 
 def plan_runs(config: Mapping[str, Any]) -> dict[str, RunPlan]:
-    """The run of every analysis of a validated configuration."""
+    """The run of every analysis of a validated configuration.
+
+    Database queries are run here and their rows hashed; the ingest step runs
+    each query again and refuses rows whose hash differs (nothing is kept in
+    between, so an unchanged run's folder is never written to).
+    """
+    from .database import rows_digest
+
     code = code_fingerprint()
     planned = {}
     for name in config["analyses"]:
         settings = analysis_settings(config, name)
-        files = source_files(settings.sources, analysis=name)
-        digests = [(str(path), file_digest(path)) for path, _ in files]
-        ident = [
-            {"sha256": d, "options": opts} for (_, d), (_, opts) in zip(digests, files, strict=True)
-        ]
+        digests, ident = [], []
+        for item in source_entries(settings.sources, analysis=name):
+            if isinstance(item, DatabaseSpec):
+                try:
+                    digest = rows_digest(item, settings.columns)
+                except PanelpipeError as err:
+                    raise PanelpipeError(f"analysis {name!r}: {err}") from None
+                label, options = item.label, item.options
+            else:
+                label, digest, options = str(item[0]), file_digest(item[0]), item[1]
+            digests.append((label, digest))
+            ident.append({"sha256": digest, "options": options})
         planned[name] = RunPlan(name, run_id(ident, settings.to_dict(), code), tuple(digests))
     return planned
 
 
 def input_change(planned: Sequence[Sequence[str]], now: Sequence[Sequence[str]]) -> str | None:
-    """How the source files differ from the plan (path, sha256 pairs), or None."""
+    """How the sources differ from the plan (path or label, sha256 pairs), or None."""
     before = [str(p) for p, _ in planned]
     after = [str(p) for p, _ in now]
     if before != after:

@@ -7,6 +7,7 @@ stage and writes its outputs atomically. Nothing here is statistics.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import datetime as dt
 import json
 import platform
@@ -21,7 +22,7 @@ import pandas as pd
 import yaml
 
 from . import __version__
-from .config import AnalysisSettings, SourceSpec, source_specs
+from .config import AnalysisSettings, DatabaseSpec, SourceSpec, source_specs
 from .findings import Finding, PanelpipeError
 from .ingest import SOURCE, read_panel, source_path
 from .runs import atomic_write_text, fault_point, file_digest, input_change
@@ -54,11 +55,40 @@ def _read_json(path: Path | str) -> Any:
     return json.loads(Path(path).read_text(encoding="utf-8"))
 
 
+def _with_planned_rows(
+    specs: Sequence[SourceSpec | DatabaseSpec], planned: Sequence[Sequence[str]]
+) -> list[SourceSpec | DatabaseSpec]:
+    """Database sources carry the rows' hash of the plan: reading refuses other rows.
+
+    A query the plan does not hold at that place gets no hash, so the check of
+    the sources against the plan refuses the run before anything is read.
+    """
+    out: list[SourceSpec | DatabaseSpec] = []
+    for i, spec in enumerate(specs):
+        if isinstance(spec, DatabaseSpec):
+            same = i < len(planned) and planned[i][0] == spec.label
+            spec = dataclasses.replace(spec, expect=str(planned[i][1]) if same else "")
+        out.append(spec)
+    return out
+
+
 def _hash_as_planned(
-    name: str, specs: Sequence[SourceSpec], planned: Sequence[Sequence[str]], doing: str
+    name: str,
+    specs: Sequence[SourceSpec | DatabaseSpec],
+    planned: Sequence[Sequence[str]],
+    doing: str,
 ) -> list[tuple[str, str]]:
-    """The (path, sha256) of every source now; refuse if they differ from the plan."""
-    now = [(str(spec.path), file_digest(spec.path)) for spec in specs]
+    """The (path, sha256) of every source now; refuse if they differ from the plan.
+
+    A database source counts with the hash it must have (``expect``): the read
+    itself compares the rows with it.
+    """
+    now = [
+        (spec.label, spec.expect)
+        if isinstance(spec, DatabaseSpec)
+        else (str(spec.path), file_digest(spec.path))
+        for spec in specs
+    ]
     change = input_change(planned, now)
     if change:
         raise PanelpipeError(
@@ -66,6 +96,15 @@ def _hash_as_planned(
             "arriving: wait until it is complete, then run again. Nothing was estimated."
         )
     return now
+
+
+def _query_record(spec: SourceSpec | DatabaseSpec) -> dict[str, str]:
+    """What the manifest records of a database source besides label, hash and rows."""
+    if not isinstance(spec, DatabaseSpec):
+        return {}
+    from .database import server_of
+
+    return {**server_of(spec), "query": spec.query}
 
 
 def ingest_step(
@@ -76,12 +115,14 @@ def ingest_step(
     run: str,
     planned: Mapping[str, Any],
 ) -> None:
-    """Read and stack the sources; record each file's hash and row count.
+    """Read and stack the sources; record each source's hash and row count.
 
     ``planned`` is the run's plan (`RunPlan.to_dict`): the run id and the
     (path, sha256) of every source as hashed when the run was planned. The files
     are hashed again before and after they are read, so the panel holds exactly
-    the bytes the run id names; a file that changed refuses the run.
+    the bytes the run id names; a file that changed refuses the run. A query is
+    run again and its rows must hash as planned; the record of a database source
+    adds its server, database and query (never a password: the URL holds none).
     """
     if run != planned["run_id"]:
         raise PanelpipeError(
@@ -89,13 +130,15 @@ def ingest_step(
             f"settings ({planned['run_id']}); an earlier run is never redone with other data."
         )
     specs = source_specs(settings.sources, settings.csv, analysis=settings.name)
+    specs = _with_planned_rows(specs, planned["inputs"])
     text = list(dict.fromkeys((settings.unit, settings.period, *settings.cluster_by)))
     _hash_as_planned(settings.name, specs, planned["inputs"], "starting")
     panel = read_panel(specs, settings.columns, text=text)
     now = _hash_as_planned(settings.name, specs, planned["inputs"], "reading it")
     counts = panel[SOURCE].astype("string").map(source_path).value_counts(sort=False)
     sources = [
-        {"path": path, "sha256": digest, "rows": int(counts.get(path, 0))} for path, digest in now
+        {"path": path, "sha256": digest, "rows": int(counts.get(path, 0)), **_query_record(spec)}
+        for (path, digest), spec in zip(now, specs, strict=True)
     ]
     Path(panel_out).parent.mkdir(parents=True, exist_ok=True)
     panel.to_parquet(panel_out, index=False)

@@ -99,7 +99,7 @@ class ValidationResult:
 
 
 def _places(panel: pd.DataFrame, mask: pd.Series) -> tuple[str, list[dict[str, Any]]]:
-    """Quote the first offending rows as 'file line N' and structured records."""
+    """Quote the first offending rows as 'file line N' (or 'database, row N') and records."""
     rows = panel.loc[mask, [SOURCE, LINE]].head(_LISTED)
     records = [
         {"file": str(s), "line": int(n)} for s, n in zip(rows[SOURCE], rows[LINE], strict=True)
