@@ -315,3 +315,45 @@ def test_each_source_keeps_its_own_decimal_mark(tmp_path: Path) -> None:
     f = next(f for f in result.findings if f.code == "non_numeric")
     assert "old.csv line 3" in f.message and "'x'" in f.message  # only the text cell
     assert "'2.5'" not in f.message and "'1,5'" not in f.message
+
+
+@pytest.mark.parametrize(
+    "body",
+    [
+        '"a""b",1\n"c",2\n',
+        '"""",1\n"",2\n',
+        '"a""",1\n"""b",2\n',
+        '"two\nlines",1\n"x",2\n',
+        '"",""\n"",""\n',
+        'a,"q,r"\r\n"s",t\r\n',
+        'a,5" screen\n"b",2\n',
+        '"x,1\n',
+        '"x"y,1\n',
+    ],
+    ids=["doubled", "only-quotes", "edges", "multiline", "empty", "crlf", "stray", "open", "after"],
+)
+def test_the_fast_quote_pairing_agrees_with_the_general_scan(body: str) -> None:
+    # The fast path either declines (None) or finds exactly what the general scan
+    # finds for every byte that is not itself a quote (inside a quoted field or not).
+    import numpy as np
+
+    from panelpipe.ingest import _line_ends, _paired_flips, _quote_flips
+
+    data = ("h1,h2\n" + body).encode()
+    buf = np.frombuffer(data, dtype=np.uint8)
+    paired = _paired_flips(buf, ord(","))
+    if paired is None:
+        return
+    general = _quote_flips("t.csv", buf, _line_ends(buf, data), ord(","))
+    others = np.flatnonzero(buf != ord('"'))
+    inside = np.searchsorted(paired, others, side="right") % 2
+    assert (inside == np.searchsorted(general, others, side="right") % 2).all()
+
+
+def test_the_fast_quote_pairing_serves_a_fully_quoted_file() -> None:
+    import numpy as np
+
+    from panelpipe.ingest import _paired_flips
+
+    data = b'"h1","h2"\n"a""b","1"\n"c","2"\n'
+    assert _paired_flips(np.frombuffer(data, dtype=np.uint8), ord(",")) is not None
