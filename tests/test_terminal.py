@@ -181,7 +181,13 @@ def test_compare_writes_numbers_as_the_report_does() -> None:
             "units_gone": [],
             "revised_cells": 1,
             "revisions": [
-                {"unit": "007", "period": "2019", "column": "jobs", "old": 12.345678901234, "new": 12.5}
+                {
+                    "unit": "007",
+                    "period": "2019",
+                    "column": "jobs",
+                    "old": 12.345678901234,
+                    "new": 12.5,
+                }
             ],
             "estimates": [
                 {
