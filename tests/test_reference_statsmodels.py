@@ -447,3 +447,24 @@ def test_correlated_random_effects_drops_only_a_redundant_unit_mean(experience: 
         assert not any(t.startswith("_unit_mean_exper") for t in model.params.index)
     else:
         assert not redundant
+
+
+def test_fit_failures_are_told_without_internal_column_names() -> None:
+    from panelpipe.estimate import _in_words
+
+    told = _in_words("collinear regressors: _intercept, _period_2016, _unit_mean_exper, x1")
+    assert told == (
+        "collinear regressors: the constant, the effect of period 2016, "
+        "the unit mean of 'exper', x1"
+    )
+
+
+def test_an_audit_fit_failure_names_no_column_number() -> None:
+    from panelpipe.diagnose import _cluster_fit
+
+    rng = np.random.default_rng(3)
+    x = rng.normal(size=(50, 2))
+    with pytest.raises(np.linalg.LinAlgError) as caught:
+        _cluster_fit(rng.normal(size=50), np.column_stack([x, x.sum(axis=1)]), np.arange(50) % 5)
+    assert "column" not in str(caught.value)
+    assert "combinations of the others" in str(caught.value)

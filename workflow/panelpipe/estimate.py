@@ -17,6 +17,7 @@ with a finding.
 
 from __future__ import annotations
 
+import re
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
@@ -869,11 +870,27 @@ def estimate_one(
             Finding(
                 "estimator_skipped",
                 "warning",
-                f"{label} could not be fitted ({exc}); the other estimators are reported.",
+                f"{label} could not be fitted ({_in_words(str(exc))}); the other estimators "
+                "are reported.",
                 {"estimator": estimator},
             )
         )
         return None, findings
+
+
+def _in_words(message: str) -> str:
+    """``message`` with the internal column names of a design in the reader's words."""
+
+    def word(match: re.Match[str]) -> str:
+        name = match[0]
+        if name == INTERCEPT:
+            return "the constant"
+        if name.startswith(PERIOD_PREFIX):
+            return f"the effect of period {name.removeprefix(PERIOD_PREFIX)}"
+        return f"the unit mean of {name.removeprefix(MEAN_PREFIX)!r}"
+
+    internal = "|".join(map(re.escape, (PERIOD_PREFIX, MEAN_PREFIX)))
+    return re.sub(rf"{re.escape(INTERCEPT)}\b|(?:{internal})[^,;\s)]+", word, message)
 
 
 def _estimate_checked(
