@@ -56,6 +56,7 @@ __all__ = [
     "estimate_one",
     "make_design",
     "planned_inference",
+    "usable_rows",
 ]
 
 INTERCEPT = "_intercept"
@@ -225,6 +226,11 @@ def _floats(s: pd.Series) -> dict[str, float]:
     return {str(k): float(v) for k, v in s.items()}
 
 
+def usable_rows(panel: pd.DataFrame, settings: AnalysisSettings) -> pd.Series:
+    """The rows that have the outcome and every regressor: those the estimators use."""
+    return panel[[settings.outcome, *settings.regressors]].notna().all(axis=1)
+
+
 def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design, list[Finding]]:
     """Build the common estimation sample from a validated panel.
 
@@ -232,9 +238,7 @@ def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design
     that all estimators are compared on the same rows.
     """
     s = settings
-    cols = [s.outcome, *s.regressors]
-    keep = panel[cols].notna().all(axis=1)
-    data = panel.loc[keep].sort_values([s.unit, s.period], kind="stable")
+    data = panel.loc[usable_rows(panel, s)].sort_values([s.unit, s.period], kind="stable")
     # Units enter the index as integer codes (0..G-1 in sorted name order): the
     # numerical core groups on them, and their names are kept beside.
     unit_codes, unit_names = pd.factorize(

@@ -305,7 +305,7 @@ def report_step(
 ) -> None:
     """Assemble results.json, estimates.csv, manifest.json and report.html."""
     from .changes import RunData, look_back
-    from .estimate import INTERCEPT
+    from .estimate import INTERCEPT, usable_rows
     from .report import (
         coefficient_figure,
         estimates_table,
@@ -408,11 +408,12 @@ def report_step(
             },
             "figures": {
                 "coefficients": coefficient_figure(models, settings.regressors),
-                # A balanced panel's map is a solid block: the page says so in words.
-                "presence": None
-                if summary.get("balanced")
-                else presence_figure(
-                    panel, settings.unit, settings.period, summary.get("period_labels")
+                "presence": presence_figure(
+                    panel,
+                    settings.unit,
+                    settings.period,
+                    summary.get("period_labels"),
+                    usable_rows(panel, settings),
                 ),
                 "variance": variance_share_figure(panel, settings.unit, settings.regressors),
                 "history": history_figure(runs, recommended, focus),
