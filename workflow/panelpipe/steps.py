@@ -326,6 +326,7 @@ def report_step(
     tests = _load_tests(tests_in)
     diagnostics = _read_json(diagnostics_in)
     panel = pd.read_parquet(panel_in)
+    used = usable_rows(panel, settings)
     findings = [
         Finding(f["code"], f["severity"], f["message"], f.get("where", {}))
         for f in validation["findings"]
@@ -409,13 +410,12 @@ def report_step(
             "figures": {
                 "coefficients": coefficient_figure(models, settings.regressors),
                 "presence": presence_figure(
-                    panel,
-                    settings.unit,
-                    settings.period,
-                    summary.get("period_labels"),
-                    usable_rows(panel, settings),
+                    panel, settings.unit, settings.period, summary.get("period_labels"), used
                 ),
-                "variance": variance_share_figure(panel, settings.unit, settings.regressors),
+                # The shares of the rows the estimates use, as the caption says.
+                "variance": variance_share_figure(
+                    panel.loc[used], settings.unit, settings.regressors
+                ),
                 "history": history_figure(runs, recommended, focus),
                 "loco": loco_figure(diagnostics.get("influential_clusters", {})),
                 "residuals": _residuals(panel, settings, models),
