@@ -146,6 +146,11 @@ def test_benchmark_end_to_end_on_a_tiny_panel(tmp_path: Path) -> None:
     assert set(doc["bare"]["processes"]) == {"bare.py"}
     assert doc["sweep"] == []
     assert doc["sweep_fit"] == {}
+    # The printed targets are named in the reader's words, not by a tracker number.
+    printed = bench.format_report(doc)
+    assert "issue" not in printed
+    for target in ("wall-time ratio", "peak-memory ratio", "no-change rerun", "wild bootstrap"):
+        assert f"  {target} <= " in printed
     # The kept folder holds what was measured.
     work = tmp_path / "work" / "n500"
     assert (work / "panel.parquet").is_file()

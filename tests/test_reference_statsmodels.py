@@ -24,6 +24,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 from scipy import stats
+from scipy.linalg import block_diag
 
 from _support import panel_settings
 from panelpipe.compare import hausman
@@ -360,3 +361,110 @@ def test_hausman_with_indefinite_covariance_difference_is_consistent(fitted: Fit
         for stat, df in (part_a, part_b)
     )
     assert test.p_value == pytest.approx(stats.chi2.sf(test.statistic, test.df), rel=1e-8)
+
+
+# ------------------------------------------- what the estimators say they left out
+
+
+def _workers(seed: int = 7, *, experience: bool) -> pd.DataFrame:
+    """Invented workers over six years; ``exper`` rises by one a year for everyone."""
+    rng = np.random.default_rng(seed)
+    units, years = 40, range(2015, 2021)
+    rows = []
+    for w in range(units):
+        start, effect = rng.integers(0, 20), rng.normal()
+        for t in years:
+            x1, x2, x3 = rng.normal(size=3)
+            exper = float(start + t - 2015)
+            rows.append((f"w{w:02d}", t, x1, x2, x3, x2 - 2 * x3, exper, effect))
+    frame = pd.DataFrame(rows, columns=["unit", "period", "x1", "x2", "x3", "x4", "exper", "a"])
+    frame["x1"] += frame.groupby("unit")["a"].transform("mean")
+    noise = rng.normal(size=len(frame))
+    frame["y"] = 0.5 * frame["x1"] + (0.03 * frame["exper"] if experience else 0) + frame["a"]
+    frame["y"] += noise
+    return frame.drop(columns="a")
+
+
+def test_a_unit_level_plus_period_trend_is_named_as_such() -> None:
+    from panelpipe.estimate import identifiable
+
+    design, _ = make_design(_workers(experience=True), panel_settings(regressors=("x1", "exper")))
+    kept, omitted = identifiable(design, "fixed_effects")
+    assert kept == ["x1"]
+    assert "unit and period effects together" in omitted["exper"]
+    assert "only over periods" not in omitted["exper"]
+
+
+def test_a_collinear_regressor_names_a_minimal_set() -> None:
+    from panelpipe.estimate import identifiable
+
+    settings = panel_settings(regressors=("x1", "x2", "x3", "x4"))
+    design, _ = make_design(_workers(experience=False), settings)
+    for key in ("pooled_ols", "fixed_effects"):
+        kept, omitted = identifiable(design, key)
+        assert kept == ["x1", "x2", "x3"]
+        # x4 = x2 - 2 x3 by construction: x1 plays no part in it.
+        assert omitted == {"x4": "is a linear combination of 'x2', 'x3' in this estimator"}
+
+
+def _gls_slopes(frame: pd.DataFrame, columns: list[str], model: ModelResult) -> pd.Series:
+    """statsmodels GLS with the random-effects covariance of the model's components."""
+    frame = frame.sort_values(["unit", "period"])
+    x = frame[[c for c in columns if not c.startswith("mean_")]].copy()
+    for c in [c for c in columns if c.startswith("mean_")]:
+        x[c] = frame.groupby("unit")[c.removeprefix("mean_")].transform("mean")
+    x = pd.concat(
+        [x, pd.get_dummies(frame["period"], prefix="p", drop_first=True, dtype=float)], axis=1
+    )
+    x.insert(0, "const", 1.0)
+    s_u, s_e = model.statistics["sigma2_unit"], model.statistics["sigma2_idiosyncratic"]
+    sizes = frame.groupby("unit", sort=False).size().to_numpy()
+    sigma = block_diag(*(s_e * np.eye(t) + s_u * np.ones((t, t)) for t in sizes))
+    fit = sm.GLS(frame["y"].to_numpy(), x.to_numpy(dtype=float), sigma=sigma).fit()
+    return pd.Series(fit.params, index=x.columns)
+
+
+@pytest.mark.parametrize("experience", [True, False], ids=["redundant-mean", "nothing-redundant"])
+def test_correlated_random_effects_drops_only_a_redundant_unit_mean(experience: bool) -> None:
+    from panelpipe.estimate import estimate_one
+
+    frame = _workers(experience=experience)
+    regressors = ("x1", "exper") if experience else ("x1", "x2")
+    design, _ = make_design(frame, panel_settings(regressors=regressors))
+    model, findings = estimate_one(design, "correlated_random_effects", ("classical",))
+    assert model is not None, [f.message for f in findings]
+    assert not any("_unit_mean" in f.message or "column 0" in f.message for f in findings)
+    means = [f"mean_{r}" for r in regressors if not (experience and r == "exper")]
+    # Reference: statsmodels GLS on the same design without the redundant mean, with
+    # the random-effects covariance built from the model's variance components.
+    reference = _gls_slopes(frame, [*regressors, *means], model)
+    for r in regressors:
+        assert model.params[r] == pytest.approx(reference[r], rel=1e-7, abs=1e-9)
+    redundant = [f for f in findings if f.code == "unit_mean_left_out"]
+    if experience:
+        (note,) = redundant
+        assert "its unit mean is left out" in note.message and "'exper'" in note.message
+        assert not any(t.startswith("_unit_mean_exper") for t in model.params.index)
+    else:
+        assert not redundant
+
+
+def test_fit_failures_are_told_without_internal_column_names() -> None:
+    from panelpipe.estimate import _in_words
+
+    told = _in_words("collinear regressors: _intercept, _period_2016, _unit_mean_exper, x1")
+    assert told == (
+        "collinear regressors: the constant, the effect of period 2016, "
+        "the unit mean of 'exper', x1"
+    )
+
+
+def test_an_audit_fit_failure_names_no_column_number() -> None:
+    from panelpipe.diagnose import _cluster_fit
+
+    rng = np.random.default_rng(3)
+    x = rng.normal(size=(50, 2))
+    with pytest.raises(np.linalg.LinAlgError) as caught:
+        _cluster_fit(rng.normal(size=50), np.column_stack([x, x.sum(axis=1)]), np.arange(50) % 5)
+    assert "column" not in str(caught.value)
+    assert "combinations of the others" in str(caught.value)

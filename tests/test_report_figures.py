@@ -69,3 +69,21 @@ def test_a_balanced_panel_has_no_presence_map_and_a_question_for_title(
     assert "Every unit is observed in every period" in html
     assert "Which unit was observed in which period" not in html
     assert "<h1>How is jobs associated with grant?</h1>" in html
+
+
+def test_the_presence_map_shows_rows_the_estimates_cannot_use() -> None:
+    from panelpipe.report import presence_figure
+
+    # An invented balanced panel of 4 schools over 5 years; 3 rows lack the outcome.
+    panel = pd.DataFrame(
+        {"school": np.repeat(["s1", "s2", "s3", "s4"], 5), "year": np.tile(range(2020, 2025), 4)}
+    )
+    used = pd.Series(True, index=panel.index)
+    assert presence_figure(panel, "school", "year", used=used) is None
+    used.iloc[[1, 7, 12]] = False
+    svg = presence_figure(panel, "school", "year", used=used)
+    assert svg is not None
+    assert "lacking the outcome or a regressor (3 rows)" in svg
+    assert "used by the estimates" in svg and "not in the data" in svg
+    gappy = presence_figure(panel.drop(index=[4]), "school", "year")
+    assert gappy is not None and "lacking" not in gappy

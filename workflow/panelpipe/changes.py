@@ -27,6 +27,7 @@ import pandas as pd
 
 from .findings import PanelpipeError
 from .periods import label_of
+from .report import _fmt, _pvalue
 
 __all__ = [
     "DamagedRunError",
@@ -482,15 +483,17 @@ def render_changes(ch: dict[str, Any]) -> str:
         f"  historical cells revised: {ch['revised_cells']}",
     ]
     for r in ch["revisions"]:
-        lines.append(f"    {r['unit']} {r['period']} {r['column']}: {r['old']} → {r['new']}")
+        lines.append(
+            f"    {r['unit']} {r['period']} {r['column']}: {_fmt(r['old'])} → {_fmt(r['new'])}"
+        )
     lines.append("  estimates (change; |z| > 1.96 marked as beyond sampling noise):")
     for e in ch["estimates"]:
         mark = "  ◆ beyond noise" if e["beyond_noise"] else ""
         z = f"z {e['z']:+.2f}" if e["z"] is not None else "z –"
         lines.append(
-            f"    {e['model']:<28} {e['term']:<20} {e['old']:>11.4f} → {e['new']:>11.4f}"
+            f"    {e['model']:<28} {e['term']:<20} {_fmt(e['old']):>11} → {_fmt(e['new']):>11}"
             f"  ({z}){mark}"
         )
     for key, t in ch["tests"].items():
-        lines.append(f"  test {key}: p {t['old_p']} → {t['new_p']}")
+        lines.append(f"  test {key}: p {_pvalue(t['old_p'])} → {_pvalue(t['new_p'])}")
     return "\n".join(lines)

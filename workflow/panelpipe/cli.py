@@ -8,9 +8,11 @@ through unchanged.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import glob
 import json
 import os
+import signal
 import subprocess
 import sys
 from collections.abc import Sequence
@@ -29,6 +31,7 @@ from .config import (
 )
 from .findings import PanelpipeError
 from .ingest import read_panel
+from .progress import StepProgress
 from .runs import (
     PLAN_ENV,
     die_with_parent,
@@ -42,6 +45,9 @@ from .runs import (
 from .validate import validate_panel
 
 __all__ = ["main"]
+
+# Snakemake's whole output of a `panelpipe run`, in the logs/ folder of each new run.
+SNAKEMAKE_LOG = "snakemake.log"
 
 
 def _config_path(given: str | None) -> Path:
@@ -118,10 +124,13 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
         else:
             if not args.dry_run:
                 _clear_stale_snakemake_lock(workdir)
-            parent = os.getpid()
-            # The kernel kills Snakemake if this process dies, however it dies
-            # (each step in turn dies with Snakemake): no orphan writes on.
-            code = subprocess.call(cmd, env=env, preexec_fn=lambda: die_with_parent(parent))
+            # A complete run folder is never written to; a dry run writes nothing.
+            logs = [
+                folders[name] / "logs" / SNAKEMAKE_LOG
+                for name, state in before.items()
+                if state != "complete" and not args.dry_run
+            ]
+            code = _snakemake(cmd, env, logs, verbose=args.verbose or args.dry_run)
         after = before if args.dry_run else _published(folders)
     failed = False
     for name, folder in folders.items():
@@ -146,9 +155,70 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
         sys.stderr.write(
             f"panelpipe: the workflow failed (Snakemake exit status {code}); the messages "
             "above name the analysis and the file at fault, and each run folder keeps its "
-            "logs/ folder.\n"
+            f"logs/ folder (Snakemake's whole output in logs/{SNAKEMAKE_LOG}).\n"
         )
     return code or int(failed)
+
+
+def _snakemake(cmd: list[str], env: dict[str, str], logs: list[Path], *, verbose: bool) -> int:
+    """Run Snakemake; its whole output to ``logs``, a line per step to the terminal.
+
+    With ``verbose`` the terminal gets Snakemake's whole output as well. On
+    Ctrl-C (SIGINT to this process) Snakemake is asked to stop its steps, which
+    remove what they left half-written, and ``KeyboardInterrupt`` is raised
+    again once it has ended.
+    """
+    parent = os.getpid()
+    with contextlib.ExitStack() as stack:
+        files = []
+        for path in logs:
+            path.parent.mkdir(parents=True, exist_ok=True)
+            files.append(stack.enter_context(path.open("a", encoding="utf-8")))
+        progress = StepProgress(lambda line: sys.stderr.write(line + "\n"))
+        proc = subprocess.Popen(
+            cmd,
+            env=env,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.STDOUT,
+            text=True,
+            errors="replace",
+            # Its own session: a Ctrl-C at the terminal reaches this process only,
+            # which passes it on once (a second would cut short Snakemake's own
+            # shutdown of its steps). The kernel kills Snakemake if this
+            # process dies, however it dies (each step in turn dies with
+            # Snakemake): no orphan writes on.
+            start_new_session=True,
+            preexec_fn=lambda: die_with_parent(parent),
+        )
+        assert proc.stdout is not None
+        try:
+            for line in proc.stdout:
+                for fh in files:
+                    fh.write(line)
+                    fh.flush()
+                if verbose:
+                    sys.stderr.write(line)
+                else:
+                    progress.feed([line])
+        except KeyboardInterrupt:
+            # As Ctrl-C at a terminal does: to Snakemake and its steps, which stop
+            # and remove what they left unfinished. A second Ctrl-C leaves at once;
+            # the kernel then kills them all (see above).
+            os.killpg(proc.pid, signal.SIGINT)
+            for line in proc.stdout:
+                for fh in files:
+                    fh.write(line)
+                    fh.flush()
+            proc.wait()
+            raise
+        code = proc.wait()
+    if code != 0 and not verbose and not progress.messages:
+        sys.stderr.write("panelpipe: Snakemake ended with these lines:\n")
+        sys.stderr.writelines(f"  {line}\n" for line in progress.tail())
+    if logs:
+        where = logs[0] if len(logs) == 1 else f"logs/{SNAKEMAKE_LOG} of each new run folder"
+        sys.stderr.write(f"panelpipe: Snakemake's whole output is in {where}\n")
+    return code
 
 
 def _clear_stale_snakemake_lock(workdir: Path) -> None:
@@ -317,6 +387,9 @@ def _parser() -> argparse.ArgumentParser:
     run.add_argument("--config", help="configuration file (default: config/config.yaml)")
     run.add_argument("--cores", type=int, default=2, help="cores Snakemake may use (default 2)")
     run.add_argument("--dry-run", action="store_true", help="show what would run, run nothing")
+    run.add_argument(
+        "--verbose", "-v", action="store_true", help="show Snakemake's whole output as well"
+    )
     chk = sub.add_parser("check", help="read and validate every analysis's data without estimating")
     chk.add_argument("--config", help="configuration file (default: config/config.yaml)")
     chk.add_argument("--verbose", "-v", action="store_true", help="also list information")
@@ -361,6 +434,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     except PanelpipeError as err:
         sys.stderr.write(f"panelpipe: {err}\n")
         return 2
+    except KeyboardInterrupt:
+        sys.stderr.write(
+            "\npanelpipe: interrupted; the running steps were stopped, nothing half-written "
+            "was kept and `latest` was not moved to an unfinished run; run the same command "
+            "again to finish.\n"
+        )
+        return 130
 
 
 if __name__ == "__main__":

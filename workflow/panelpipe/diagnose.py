@@ -300,13 +300,15 @@ def _cluster_fit(y: FloatArray, X: FloatArray, clusters: IntArray) -> _Fit:
     n, k = X.shape
     if g < 2 or n <= k:
         raise np.linalg.LinAlgError(f"{n} rows, {k} columns and {g} cluster(s) are too few")
-    reg = least_squares(
-        y,
-        X,
-        tuple(f"column {j}" for j in range(k)),
-        time=np.zeros(n, dtype=np.intp),
-        rows=np.arange(n),
-    )
+    try:
+        reg = least_squares(
+            y, X, tuple(map(str, range(k))), time=np.zeros(n, dtype=np.intp), rows=np.arange(n)
+        )
+    except np.linalg.LinAlgError:
+        # The columns are this check's own construction, not names a reader knows.
+        raise np.linalg.LinAlgError(
+            "in this check's regression some regressors are combinations of the others"
+        ) from None
     coef, resid = reg.params, reg.resid
     cov = covariance(reg, "cluster", clusters=codes)
     return _Fit(coef, resid, cov, g, codes, X, y)

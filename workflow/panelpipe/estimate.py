@@ -17,6 +17,7 @@ with a finding.
 
 from __future__ import annotations
 
+import re
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
@@ -55,6 +56,7 @@ __all__ = [
     "estimate_one",
     "make_design",
     "planned_inference",
+    "usable_rows",
 ]
 
 INTERCEPT = "_intercept"
@@ -224,6 +226,11 @@ def _floats(s: pd.Series) -> dict[str, float]:
     return {str(k): float(v) for k, v in s.items()}
 
 
+def usable_rows(panel: pd.DataFrame, settings: AnalysisSettings) -> pd.Series:
+    """The rows that have the outcome and every regressor: those the estimators use."""
+    return panel[[settings.outcome, *settings.regressors]].notna().all(axis=1)
+
+
 def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design, list[Finding]]:
     """Build the common estimation sample from a validated panel.
 
@@ -231,9 +238,7 @@ def make_design(panel: pd.DataFrame, settings: AnalysisSettings) -> tuple[Design
     that all estimators are compared on the same rows.
     """
     s = settings
-    cols = [s.outcome, *s.regressors]
-    keep = panel[cols].notna().all(axis=1)
-    data = panel.loc[keep].sort_values([s.unit, s.period], kind="stable")
+    data = panel.loc[usable_rows(panel, s)].sort_values([s.unit, s.period], kind="stable")
     # Units enter the index as integer codes (0..G-1 in sorted name order): the
     # numerical core groups on them, and their names are kept beside.
     unit_codes, unit_names = pd.factorize(
@@ -337,15 +342,39 @@ def first_differences(values: np.ndarray, design: Design) -> np.ndarray:
     return out
 
 
+def dependencies(columns: np.ndarray, tol: float = 1e-8) -> tuple[list[int], dict[int, list[int]]]:
+    """Scan columns left to right; the kept ones and what explains each one left out.
+
+    Column j is left out when what is left of it after the kept columns before it
+    is (numerically) nothing: the j-th diagonal element of R of the QR
+    decomposition of the unit-scaled columns. Its explanation is the kept
+    columns with a non-zero weight in its least-squares fit on them; the kept
+    columns are independent, so the fit is unique and these columns are a
+    minimal set that reproduces it (one null vector of the columns).
+    """
+    norms = np.sqrt((columns**2).sum(axis=0))
+    norms[norms == 0.0] = 1.0
+    scaled = columns / norms
+    r = triangular_factor(scaled)
+    kept: list[int] = []
+    left_out: dict[int, list[int]] = {}
+    for j in range(scaled.shape[1]):
+        if kept and abs(r[j, j]) <= tol:
+            weights = np.linalg.lstsq(scaled[:, kept], scaled[:, j], rcond=None)[0]
+            left_out[j] = [kept[i] for i in np.flatnonzero(np.abs(weights) > 1e-6)]
+        else:
+            kept.append(j)
+    return kept, left_out
+
+
 def identifiable(design: Design, key: str) -> tuple[list[str], dict[str, str]]:
     """Split the regressors into those estimator ``key`` can use and the rest.
 
     A regressor is left out when, after the estimator's transformation, nothing
-    of it is left (it does not vary within units, or varies only over periods)
-    or it is a linear combination of regressors already kept. One QR
-    decomposition of the transformed regressors answers both: the j-th diagonal
-    element of R is the norm of what is left of column j after the columns
-    before it.
+    of it is left (it does not vary within units, varies only over periods, or
+    is a unit part plus a period part, which the unit and period effects absorb
+    together) or it is a linear combination of regressors already kept; the
+    reason names a minimal set of those (`dependencies`).
     """
     names = list(design.x.columns)
     raw = design.x.to_numpy()
@@ -361,21 +390,61 @@ def identifiable(design: Design, key: str) -> tuple[list[str], dict[str, str]]:
             omitted[name] = "does not change within units, so the unit effects absorb it"
         elif key == "between":
             omitted[name] = "its unit means do not vary across units"
+        elif key in {"fixed_effects", "first_difference"} and not constant_within(
+            raw[:, j], period_codes(design)
+        ):
+            omitted[name] = (
+                "is a unit's own level plus a change common to all units in each period "
+                "(as years of experience are), so the unit and period effects together "
+                "absorb it"
+            )
         else:
             omitted[name] = "varies only over periods, so the period effects absorb it"
     kept: list[int] = []
     if candidates:
-        cols = transformed[:, candidates]
-        r = triangular_factor(cols / np.sqrt((cols**2).sum(axis=0)))
-        for pos, j in enumerate(candidates):
-            if kept and abs(r[pos, pos]) <= 1e-8:
-                others = ", ".join(names[k] for k in kept)
-                omitted[names[j]] = f"is a linear combination of {others} in this estimator"
-            else:
-                kept.append(j)
+        kept_pos, left_out = dependencies(transformed[:, candidates])
+        kept = [candidates[i] for i in kept_pos]
+        for pos, basis in left_out.items():
+            others = ", ".join(repr(names[candidates[i]]) for i in basis)
+            omitted[names[candidates[pos]]] = (
+                f"is a linear combination of {others} in this estimator"
+            )
     order = {name: i for i, name in enumerate(names)}
     omitted = dict(sorted(omitted.items(), key=lambda kv: order[kv[0]]))
     return [names[k] for k in kept], omitted
+
+
+def unit_mean_terms(design: Design, terms: list[str]) -> tuple[list[str], dict[str, str]]:
+    """The regressors whose unit means enter correlated random effects, and the rest.
+
+    A unit mean enters for every regressor that changes within units, unless it is
+    a linear combination of the constant, the regressors, the period effects and
+    the unit means before it (a regressor that is a unit's level plus a period
+    trend, say): that mean is left out and the estimator is kept, with the reason
+    naming a minimal set of the columns that explain it.
+    """
+    all_names = list(design.x.columns)
+    varying = [t for t in terms if not _time_invariant(design, all_names.index(t))]
+    if not varying:
+        return [], {}
+    x = design.x[terms].to_numpy(dtype=float)
+    means = group_means(design.x[varying].to_numpy(dtype=float), design.unit_codes)
+    base = [np.ones((design.nobs, 1)), x, design.period_dummies.to_numpy(dtype=float)]
+    # What each column is, in the user's words; the period dummies together are
+    # "the period effects", named once.
+    phrase = ["the constant", *(repr(t) for t in terms)]
+    phrase += ["the period effects"] * design.period_dummies.shape[1]
+    phrase += [f"the unit mean of {t!r}" for t in varying]
+    kept, left_out = dependencies(np.column_stack([*base, means[design.unit_codes]]))
+    first = len(phrase) - len(varying)
+    notes = {}
+    for j, basis in left_out.items():
+        if j >= first:
+            explained = ", ".join(dict.fromkeys(phrase[i] for i in basis))
+            notes[varying[j - first]] = (
+                f"its unit mean is left out: it is a linear combination of {explained}"
+            )
+    return [t for i, t in enumerate(varying) if first + i in kept], notes
 
 
 def _time_invariant(design: Design, j: int) -> bool:
@@ -438,8 +507,7 @@ def _columns(estimator: str, design: Design, terms: list[str]) -> tuple[list[str
     names = [INTERCEPT, *terms, *period_names]
     cols = [const, x, d]
     if estimator == "correlated_random_effects":
-        all_names = list(design.x.columns)
-        varying = [t for t in terms if not _time_invariant(design, all_names.index(t))]
+        varying = unit_mean_terms(design, terms)[0]
         cols.append(
             group_means(design.x[varying].to_numpy(dtype=float), design.unit_codes)[
                 design.unit_codes
@@ -806,11 +874,27 @@ def estimate_one(
             Finding(
                 "estimator_skipped",
                 "warning",
-                f"{label} could not be fitted ({exc}); the other estimators are reported.",
+                f"{label} could not be fitted ({_in_words(str(exc))}); the other estimators "
+                "are reported.",
                 {"estimator": estimator},
             )
         )
         return None, findings
+
+
+def _in_words(message: str) -> str:
+    """``message`` with the internal column names of a design in the reader's words."""
+
+    def word(match: re.Match[str]) -> str:
+        name = match[0]
+        if name == INTERCEPT:
+            return "the constant"
+        if name.startswith(PERIOD_PREFIX):
+            return f"the effect of period {name.removeprefix(PERIOD_PREFIX)}"
+        return f"the unit mean of {name.removeprefix(MEAN_PREFIX)!r}"
+
+    internal = "|".join(map(re.escape, (PERIOD_PREFIX, MEAN_PREFIX)))
+    return re.sub(rf"{re.escape(INTERCEPT)}\b|(?:{internal})[^,;\s)]+", word, message)
 
 
 def _estimate_checked(
@@ -827,6 +911,18 @@ def _estimate_checked(
                 {"estimator": estimator, "column": name},
             )
         )
+    if estimator == "correlated_random_effects" and terms:
+        for name, reason in unit_mean_terms(design, terms)[1].items():
+            findings.append(
+                Finding(
+                    "unit_mean_left_out",
+                    "info",
+                    f"{ESTIMATOR_LABELS[estimator]}: {reason}; the estimator is fitted "
+                    f"without it, and its coefficient on {name!r} then rests on the "
+                    "random-effects assumption that the unit effects are unrelated to it.",
+                    {"estimator": estimator, "column": name},
+                )
+            )
     if not terms:
         findings.append(
             Finding(

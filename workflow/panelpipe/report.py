@@ -411,23 +411,37 @@ def _factorize_units(values: pd.Series) -> tuple[np.ndarray, pd.Index]:
 
 
 def presence_figure(
-    panel: pd.DataFrame, unit: str, period: str, labels: Mapping[str, str] | None = None
-) -> str:
-    """Which unit was observed in which period (filled = observed).
+    panel: pd.DataFrame,
+    unit: str,
+    period: str,
+    labels: Mapping[str, str] | None = None,
+    used: pd.Series | None = None,
+) -> str | None:
+    """Which unit was observed in which period, and whether the estimates use the row.
 
-    Units are ordered as numbers when every id reads as one (so 1094 comes
-    before 10043), otherwise as text.
+    ``used`` marks the rows that have the outcome and every regressor (all rows when
+    not given). None when every unit is observed in every period and every row is
+    used: the map would be a solid block, and the page says so in words. Units
+    are ordered as numbers when every id reads as one (so 1094 comes before
+    10043), otherwise as text.
     """
+    from matplotlib.patches import Patch
+
     unit_codes, unit_levels = _factorize_units(panel[unit])
     period_codes, period_levels = pd.factorize(panel[period], sort=True)
+    in_use = np.ones(len(panel), bool) if used is None else np.asarray(used, bool)
+    if len(panel) == len(unit_levels) * len(period_levels) and in_use.all():
+        return None
     n_shown = min(80, len(unit_levels))
     rows = unit_codes < n_shown  # the first units in sorted order
     grid = np.zeros((n_shown, len(period_levels)))
-    grid[unit_codes[rows], period_codes[rows]] = 1.0
+    # Dark: used by the estimates; pale: in the data but lacking a value; white: absent.
+    grid[unit_codes[rows], period_codes[rows]] = np.where(in_use[rows], 1.0, 0.35)
     fig, ax = plt.subplots(
-        figsize=(min(0.32 * len(period_levels) + 2, 9), min(0.07 * n_shown + 1.2, 5.5))
+        figsize=(min(0.32 * len(period_levels) + 2, 9), min(0.07 * n_shown + 1.2, 5.5) + 0.5)
     )
-    ax.imshow(grid, aspect="auto", cmap="Blues", vmin=0, vmax=1.3, interpolation="nearest")
+    cmap = plt.get_cmap("Blues")
+    ax.imshow(grid, aspect="auto", cmap=cmap, vmin=0, vmax=1.3, interpolation="nearest")
     ax.set_xticks(range(len(period_levels)))
     names = labels or {}
     ax.set_xticklabels([names.get(str(c), str(c)) for c in period_levels], rotation=90, fontsize=7)
@@ -436,8 +450,14 @@ def presence_figure(
     ax.set_yticklabels([str(u) for u in unit_levels[:n_shown:step]], fontsize=7)
     ax.set_xlabel(period)
     ax.set_ylabel(unit)
+    legend = [Patch(facecolor=cmap(1.0 / 1.3), edgecolor="grey", label="used by the estimates")]
+    if not in_use.all():
+        lacking = f"in the data, lacking the outcome or a regressor ({int((~in_use).sum())} rows)"
+        legend.append(Patch(facecolor=cmap(0.35 / 1.3), edgecolor="grey", label=lacking))
+    legend.append(Patch(facecolor="white", edgecolor="grey", label="not in the data"))
+    ax.legend(handles=legend, loc="lower left", bbox_to_anchor=(0, 1.01), fontsize=7, frameon=False)
     if len(unit_levels) > n_shown:
-        ax.set_title(f"first {n_shown} of {len(unit_levels)} units", fontsize=8)
+        ax.set_title(f"first {n_shown} of {len(unit_levels)} units", fontsize=8, loc="right")
     fig.tight_layout()
     return _svg(fig)
 

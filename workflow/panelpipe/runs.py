@@ -457,17 +457,19 @@ def fault_point(name: str) -> None:
     The process writes its id to the file ``PANELPIPE_FAULT_MARK`` names and
     waits for SIGUSR1 (then goes on) or for a signal that ends it, so a test can
     act at exactly this point without racing the run (DEVELOPERS.md lists the
-    points).
+    points). SIGINT ends it as Ctrl-C ends a running step: with ``KeyboardInterrupt``.
     """
     if os.environ.get(FAULT_ENV) != name:
         return
-    resume = {signal.SIGUSR1}
-    signal.pthread_sigmask(signal.SIG_BLOCK, resume)  # a SIGUSR1 sent early is kept
+    awaited = {signal.SIGUSR1, signal.SIGINT}
+    signal.pthread_sigmask(signal.SIG_BLOCK, awaited)  # a signal sent early is kept
     mark = os.environ.get(FAULT_MARK_ENV)
     if mark:
         atomic_write_text(Path(mark), str(os.getpid()))
-    signal.sigwait(resume)
-    signal.pthread_sigmask(signal.SIG_UNBLOCK, resume)
+    got = signal.sigwait(awaited)
+    signal.pthread_sigmask(signal.SIG_UNBLOCK, awaited)
+    if got == signal.SIGINT:
+        raise KeyboardInterrupt
 
 
 def enter_step(name: str) -> None:

@@ -348,7 +348,7 @@ def report_step(
 ) -> None:
     """Assemble results.json, estimates.csv, manifest.json and report.html."""
     from .changes import RunData, look_back
-    from .estimate import INTERCEPT
+    from .estimate import INTERCEPT, usable_rows
     from .report import (
         coefficient_figure,
         estimates_table,
@@ -369,6 +369,7 @@ def report_step(
     tests = _load_tests(tests_in)
     diagnostics = _read_json(diagnostics_in)
     panel = pd.read_parquet(panel_in)
+    used = usable_rows(panel, settings)
     findings = [
         Finding(f["code"], f["severity"], f["message"], f.get("where", {}))
         for f in validation["findings"]
@@ -451,13 +452,13 @@ def report_step(
             },
             "figures": {
                 "coefficients": coefficient_figure(models, settings.regressors),
-                # A balanced panel's map is a solid block: the page says so in words.
-                "presence": None
-                if summary.get("balanced")
-                else presence_figure(
-                    panel, settings.unit, settings.period, summary.get("period_labels")
+                "presence": presence_figure(
+                    panel, settings.unit, settings.period, summary.get("period_labels"), used
                 ),
-                "variance": variance_share_figure(panel, settings.unit, settings.regressors),
+                # The shares of the rows the estimates use, as the caption says.
+                "variance": variance_share_figure(
+                    panel.loc[used], settings.unit, settings.regressors
+                ),
                 "history": history_figure(runs, recommended, focus),
                 "loco": loco_figure(diagnostics.get("influential_clusters", {})),
                 "residuals": _residuals(panel, settings, models),
