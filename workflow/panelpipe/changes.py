@@ -25,6 +25,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from .distributions import norm_ppf
 from .findings import PanelpipeError
 from .periods import label_of
 
@@ -135,6 +136,9 @@ def _manifest_problem(doc: Mapping[str, Any]) -> str | None:
     for key in ("unit", "period"):
         if not isinstance(settings.get(key), str):
             return f"has no {key!r} column in its settings"
+    level = settings.get("level")
+    if not isinstance(level, (int, float)) or isinstance(level, bool) or not 0 < level < 1:
+        return "has no confidence 'level' between 0 and 1 in its settings"
     if _created(doc.get("created")) is None:
         return "has no 'created' time"
     return None
@@ -232,7 +236,10 @@ def diff_runs(a: RunData, b: RunData) -> dict[str, Any]:
     A coefficient's move is compared with sqrt(se_A² + se_B²) under run B's
     headline inference; this treats the two estimates as independent, which
     overstates the noise when the samples overlap, so a move flagged as larger
-    than noise is a conservative signal (common practice, no source).
+    than noise is a conservative signal (common practice, no source). The
+    threshold (``noise_threshold``) is the two-sided normal quantile of run B's
+    confidence level, the scale of a difference of two estimates over its
+    combined standard error.
     """
     if a.panel is None or b.panel is None:
         raise ValueError("diff_runs needs both runs' panels (load_run(..., panel=True))")
@@ -270,6 +277,7 @@ def diff_runs(a: RunData, b: RunData) -> dict[str, Any]:
             strict=True,
         )
     ]
+    threshold = float(norm_ppf(0.5 + float(settings["level"]) / 2))
     moved = []
     for key, mb in b.results["models"].items():
         ma = a.results["models"].get(key)
@@ -292,7 +300,7 @@ def diff_runs(a: RunData, b: RunData) -> dict[str, Any]:
                     "new": vb,
                     "change": vb - va,
                     "z": z,
-                    "beyond_noise": bool(z is not None and abs(z) > 1.96),
+                    "beyond_noise": bool(z is not None and abs(z) > threshold),
                 }
             )
     tests = {}
@@ -316,6 +324,7 @@ def diff_runs(a: RunData, b: RunData) -> dict[str, Any]:
         "units_gone": sorted(map(str, units_a - units_b)),
         "revised_cells": len(revised),
         "revisions": revisions,
+        "noise_threshold": threshold,
         "estimates": moved,
         "tests": tests,
     }
@@ -483,7 +492,9 @@ def render_changes(ch: dict[str, Any]) -> str:
     ]
     for r in ch["revisions"]:
         lines.append(f"    {r['unit']} {r['period']} {r['column']}: {r['old']} → {r['new']}")
-    lines.append("  estimates (change; |z| > 1.96 marked as beyond sampling noise):")
+    lines.append(
+        f"  estimates (change; |z| > {ch['noise_threshold']:.2f} marked as beyond sampling noise):"
+    )
     for e in ch["estimates"]:
         mark = "  ◆ beyond noise" if e["beyond_noise"] else ""
         z = f"z {e['z']:+.2f}" if e["z"] is not None else "z –"

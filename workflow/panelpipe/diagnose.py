@@ -71,7 +71,7 @@ import scipy.linalg
 import scipy.linalg.lapack
 
 from .bootstrap import wild_cluster_bootstrap
-from .distributions import chi2_sf, f_sf, norm_sf, t_sf
+from .distributions import chi2_sf, f_sf, norm_sf, t_ppf, t_sf
 from .estimate import (
     INFERENCE_LABELS,
     Design,
@@ -2010,6 +2010,7 @@ def _influential_clusters(ctx: _Context) -> Diagnostic:
     cv3 = float(np.sqrt((g - 1) / g * np.nansum(shift**2)))
     t_cv3 = b / cv3 if cv3 > 0 else float("inf")
     p_cv3 = float(2.0 * t_sf(abs(t_cv3), g - 1))
+    crit = float(t_ppf(0.5 + ctx.design.settings.level / 2, g - 1))
     stat = float(abs(shift[worst]) / se)
     labels = [str(c) for c in ix.cluster_labels]
     # Every cluster's estimate when there are few; else the 30 lowest and highest.
@@ -2023,6 +2024,7 @@ def _influential_clusters(ctx: _Context) -> Diagnostic:
         "estimate_without_it": float(loo[worst]),
         "cv3_se": cv3,
         "cr1_se": se,
+        "cr1_interval": [b - crit * se, b + crit * se],
         "cv3_p_value": p_cv3,
         "leave_one_out": {labels[i]: float(loo[i]) for i in order},
     }
