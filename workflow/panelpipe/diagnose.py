@@ -1069,7 +1069,7 @@ def _attrition(ctx: _Context) -> Diagnostic:
                 term_index=cols[0],
                 term="present_next_period",
                 draws=int(THRESHOLDS["bootstrap_draws"]),
-                seed=int(ctx.design.settings.bootstrap.get("seed", 0)),
+                seed=ctx.design.settings.bootstrap.seed,
             )
         except ValueError as exc:
             details["wild_bootstrap"] = f"not run: {exc}"
@@ -1899,7 +1899,7 @@ def _bootstrap_effect(ctx: _Context, details: dict[str, Any]) -> dict[str, Any]:
             term=ctx.focus,
             draws=int(THRESHOLDS["bootstrap_draws"]),
             level=ctx.design.settings.level,
-            seed=int(ctx.design.settings.bootstrap.get("seed", 0)),
+            seed=ctx.design.settings.bootstrap.seed,
         )
     except ValueError as exc:
         details["wild_bootstrap"] = f"not run: {exc}"

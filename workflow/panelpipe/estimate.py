@@ -646,10 +646,10 @@ def _wild_bootstrap(
             clusters,
             term_index=names.index(term),
             term=term,
-            draws=int(opts.get("draws", 9999)),
-            weights=str(opts.get("weights", "auto")),
+            draws=opts.draws,
+            weights=opts.weights,
             level=level,
-            seed=int(opts.get("seed", 20261202)),
+            seed=opts.seed,
         )
         se[term] = abs(result.estimate / result.t_stat) if result.t_stat else np.nan
         p[term], lo[term], hi[term] = result.p_value, result.ci_low, result.ci_high
