@@ -18,7 +18,14 @@ from pathlib import Path
 
 import yaml
 
-from .config import REPO_ROOT, analysis_settings, load_config, source_specs, validate_config
+from .config import (
+    REPO_ROOT,
+    WORKFLOW_ROOT,
+    analysis_settings,
+    load_config,
+    source_specs,
+    validate_config,
+)
 from .findings import PanelpipeError
 from .ingest import read_panel
 from .runs import (
@@ -48,9 +55,10 @@ def _config_path(given: str | None) -> Path:
     else:
         path = Path.cwd() / "config" / "config.yaml"
         if not path.is_file():
+            demo = REPO_ROOT / "config" / "config.yaml"
             raise PanelpipeError(
-                f"no --config given and {path} does not exist; pass --config FILE (the demo "
-                f"analysis is {REPO_ROOT / 'config' / 'config.yaml'})."
+                f"no --config given and {path} does not exist; pass --config FILE"
+                + (f" (the demo analysis is {demo})." if demo.is_file() else ".")
             )
     sys.stderr.write(f"panelpipe: using the configuration {path}\n")
     return path
@@ -80,7 +88,7 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
         "-m",
         "snakemake",
         "--snakefile",
-        str(REPO_ROOT / "Snakefile"),
+        str(WORKFLOW_ROOT / "Snakefile"),
         "--directory",
         str(workdir),
         "--configfile",

@@ -1,6 +1,6 @@
 """Read and check the configuration before anything runs.
 
-The JSON Schema in ``workflow/schemas/config.schema.yaml`` is the single
+The JSON Schema ``workflow/schemas/config.schema.yaml`` (`SCHEMA_PATH`) is the single
 definition of the keys; this module applies it (filling defaults) and adds the
 checks a schema cannot express, such as that every source file exists.
 
@@ -39,6 +39,7 @@ __all__ = [
     "RESERVED_COLUMNS",
     "RESERVED_PREFIXES",
     "SCHEMA_PATH",
+    "WORKFLOW_ROOT",
     "AnalysisSettings",
     "BootstrapSettings",
     "EstimatorKey",
@@ -55,7 +56,19 @@ __all__ = [
 ]
 
 REPO_ROOT = Path(__file__).resolve().parents[2]
-SCHEMA_PATH = REPO_ROOT / "workflow" / "schemas" / "config.schema.yaml"
+"""The repository of a source checkout (meaningless for a non-editable install)."""
+
+_PACKAGED_WORKFLOW = Path(__file__).resolve().parent / "_workflow"
+
+WORKFLOW_ROOT = _PACKAGED_WORKFLOW if (_PACKAGED_WORKFLOW / "Snakefile").is_file() else REPO_ROOT
+"""The folder holding the ``Snakefile`` and ``workflow/{rules,scripts,schemas}``.
+
+A non-editable install carries copies of them inside the package (setup.py puts
+them in ``panelpipe/_workflow``); a source checkout and an editable install use the
+repository's own.
+"""
+
+SCHEMA_PATH = WORKFLOW_ROOT / "workflow" / "schemas" / "config.schema.yaml"
 
 MAX_CONFIG_BYTES = 1 << 20
 """Largest configuration file read (1 MiB); real configs are a few kilobytes."""
