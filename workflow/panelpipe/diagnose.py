@@ -1,6 +1,6 @@
 """Diagnose: audit the fixed-effects estimate against the threats to internal validity.
 
-Every row of the audit table in METHODS.md becomes a `Diagnostic`: a status
+Every check in the table below becomes a `Diagnostic`: a status
 (``ok``, ``caution``, ``problem`` or ``not_run`` with the reason), the statistic
 and p-value where a test applies, the effect on the headline (focus) coefficient
 where one can be computed, and one plain sentence on what it means for the

@@ -166,7 +166,7 @@ def results_document(
     recommended: str,
     reasons: Sequence[str],
 ) -> dict[str, Any]:
-    """The ``results.json`` document, schema_version 1 (CONTRACT.md)."""
+    """The ``results.json`` document, schema_version 1 (README.md, "Where a run lands")."""
     return {
         "schema_version": SCHEMA_VERSION,
         "analysis": analysis,
