@@ -35,7 +35,6 @@ def panel_settings(**overrides: Any) -> AnalysisSettings:
         "estimators": (),
         "inference": ("classical", "cluster"),
         "level": 0.95,
-        "gates": {},
     }
     base.update(overrides)
     return AnalysisSettings(**base)

@@ -4,11 +4,23 @@ from __future__ import annotations
 
 import copy
 from pathlib import Path
+from typing import get_args, get_type_hints
 
 import pytest
 import yaml
 
-from panelpipe.config import REPO_ROOT, load_config, resolve_sources, validate_config
+from _support import panel_settings
+from panelpipe.config import (
+    REPO_ROOT,
+    BootstrapSettings,
+    EstimatorKey,
+    Gates,
+    InferenceKey,
+    analysis_settings,
+    load_config,
+    resolve_sources,
+    validate_config,
+)
 from panelpipe.findings import PanelpipeError
 
 DEMO = yaml.safe_load((REPO_ROOT / "config" / "config.yaml").read_text())
@@ -248,3 +260,39 @@ def test_keys_that_are_not_text_are_refused(key: object) -> None:
     cfg["analyses"] = {key: cfg["analyses"]["regional_jobs"]}
     with pytest.raises(PanelpipeError, match=rf"analyses: the key {key!r} is not text; quote it"):
         validate_config(cfg)
+
+
+def test_bootstrap_and_gates_are_typed_and_filled_from_the_schema_in_one_place() -> None:
+    """One default per setting: the bootstrap seed no longer falls back to two values."""
+    schema = yaml.safe_load((REPO_ROOT / "workflow/schemas/config.schema.yaml").read_text())
+    props = schema["definitions"]["analysis"]["properties"]
+    wanted_boot = {k: v["default"] for k, v in props["bootstrap"]["properties"].items()}
+    wanted_gates = {k: v["default"] for k, v in props["gates"]["properties"].items()}
+    # Settings built without a configuration (as the tests and tools do) ...
+    bare = panel_settings()
+    assert isinstance(bare.bootstrap, BootstrapSettings)
+    assert isinstance(bare.gates, Gates)
+    assert bare.bootstrap.seed == wanted_boot["seed"]
+    assert bare.to_dict()["bootstrap"] == wanted_boot
+    assert bare.to_dict()["gates"] == wanted_gates
+    # ... and from a validated configuration agree, and to_dict (which enters the run id)
+    # is the configuration's own filled-in mapping.
+    cfg = copy.deepcopy(DEMO)
+    cfg["analyses"]["regional_jobs"].pop("bootstrap", None)
+    cfg["analyses"]["regional_jobs"]["gates"] = {"min_clusters": 3}
+    filled = validate_config(cfg)
+    settings = analysis_settings(filled, "regional_jobs")
+    assert settings.bootstrap.seed == bare.bootstrap.seed
+    assert settings.gates.min_clusters == 3
+    assert settings.to_dict()["bootstrap"] == filled["analyses"]["regional_jobs"]["bootstrap"]
+    assert settings.to_dict()["gates"] == filled["analyses"]["regional_jobs"]["gates"]
+
+
+def test_the_literal_keys_are_the_schema_choices() -> None:
+    schema = yaml.safe_load((REPO_ROOT / "workflow/schemas/config.schema.yaml").read_text())
+    props = schema["definitions"]["analysis"]["properties"]
+    assert list(get_args(EstimatorKey)) == props["estimators"]["items"]["enum"]
+    assert list(get_args(InferenceKey)) == props["inference"]["items"]["enum"]
+    assert set(get_args(get_type_hints(BootstrapSettings)["weights"])) == set(
+        props["bootstrap"]["properties"]["weights"]["enum"]
+    )

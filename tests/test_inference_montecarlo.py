@@ -45,7 +45,7 @@ import pytest
 
 from _support import panel_settings
 from panelpipe.compare import run_comparisons
-from panelpipe.config import AnalysisSettings
+from panelpipe.config import AnalysisSettings, BootstrapSettings
 from panelpipe.estimate import estimate_all, make_design
 
 FIRST_PERIOD = 2001
@@ -67,7 +67,7 @@ def _settings(
         period_effects=False,
         estimators=estimators,
         inference=inference,
-        bootstrap=bootstrap or {},
+        bootstrap=BootstrapSettings.from_mapping(bootstrap or {}),
     )
 
 

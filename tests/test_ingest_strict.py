@@ -60,7 +60,6 @@ def settings_for(path: Path, **csv: object) -> AnalysisSettings:
         estimators=("pooled_ols",),
         inference=("classical",),
         level=0.95,
-        gates={},
         csv=dict(csv),
     )
 

@@ -25,6 +25,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from .distributions import norm_ppf
 from .findings import PanelpipeError
 from .periods import label_of
 from .report import _fmt, _pvalue
@@ -136,6 +137,9 @@ def _manifest_problem(doc: Mapping[str, Any]) -> str | None:
     for key in ("unit", "period"):
         if not isinstance(settings.get(key), str):
             return f"has no {key!r} column in its settings"
+    level = settings.get("level")
+    if not isinstance(level, (int, float)) or isinstance(level, bool) or not 0 < level < 1:
+        return "has no confidence 'level' between 0 and 1 in its settings"
     if _created(doc.get("created")) is None:
         return "has no 'created' time"
     return None
@@ -233,7 +237,10 @@ def diff_runs(a: RunData, b: RunData) -> dict[str, Any]:
     A coefficient's move is compared with sqrt(se_A² + se_B²) under run B's
     headline inference; this treats the two estimates as independent, which
     overstates the noise when the samples overlap, so a move flagged as larger
-    than noise is a conservative signal (common practice, no source).
+    than noise is a conservative signal (common practice, no source). The
+    threshold (``noise_threshold``) is the two-sided normal quantile of run B's
+    confidence level, the scale of a difference of two estimates over its
+    combined standard error.
     """
     if a.panel is None or b.panel is None:
         raise ValueError("diff_runs needs both runs' panels (load_run(..., panel=True))")
@@ -271,6 +278,7 @@ def diff_runs(a: RunData, b: RunData) -> dict[str, Any]:
             strict=True,
         )
     ]
+    threshold = float(norm_ppf(0.5 + float(settings["level"]) / 2))
     moved = []
     for key, mb in b.results["models"].items():
         ma = a.results["models"].get(key)
@@ -293,7 +301,7 @@ def diff_runs(a: RunData, b: RunData) -> dict[str, Any]:
                     "new": vb,
                     "change": vb - va,
                     "z": z,
-                    "beyond_noise": bool(z is not None and abs(z) > 1.96),
+                    "beyond_noise": bool(z is not None and abs(z) > threshold),
                 }
             )
     tests = {}
@@ -317,6 +325,7 @@ def diff_runs(a: RunData, b: RunData) -> dict[str, Any]:
         "units_gone": sorted(map(str, units_a - units_b)),
         "revised_cells": len(revised),
         "revisions": revisions,
+        "noise_threshold": threshold,
         "estimates": moved,
         "tests": tests,
     }
@@ -486,7 +495,9 @@ def render_changes(ch: dict[str, Any]) -> str:
         lines.append(
             f"    {r['unit']} {r['period']} {r['column']}: {_fmt(r['old'])} → {_fmt(r['new'])}"
         )
-    lines.append("  estimates (change; |z| > 1.96 marked as beyond sampling noise):")
+    lines.append(
+        f"  estimates (change; |z| > {ch['noise_threshold']:.2f} marked as beyond sampling noise):"
+    )
     for e in ch["estimates"]:
         mark = "  ◆ beyond noise" if e["beyond_noise"] else ""
         z = f"z {e['z']:+.2f}" if e["z"] is not None else "z –"

@@ -23,6 +23,7 @@ import yaml
 
 from .config import (
     REPO_ROOT,
+    WORKFLOW_ROOT,
     SourceSpec,
     analysis_settings,
     load_config,
@@ -62,9 +63,10 @@ def _config_path(given: str | None) -> Path:
     else:
         path = Path.cwd() / "config" / "config.yaml"
         if not path.is_file():
+            demo = REPO_ROOT / "config" / "config.yaml"
             raise PanelpipeError(
-                f"no --config given and {path} does not exist; pass --config FILE (the demo "
-                f"analysis is {REPO_ROOT / 'config' / 'config.yaml'})."
+                f"no --config given and {path} does not exist; pass --config FILE"
+                + (f" (the demo analysis is {demo})." if demo.is_file() else ".")
             )
     sys.stderr.write(f"panelpipe: using the configuration {path}\n")
     return path
@@ -94,7 +96,7 @@ def _run(args: argparse.Namespace, extra: Sequence[str]) -> int:
         "-m",
         "snakemake",
         "--snakefile",
-        str(REPO_ROOT / "Snakefile"),
+        str(WORKFLOW_ROOT / "Snakefile"),
         "--directory",
         str(workdir),
         "--configfile",

@@ -1,6 +1,6 @@
 """Read and check the configuration before anything runs.
 
-The JSON Schema in ``workflow/schemas/config.schema.yaml`` is the single
+The JSON Schema ``workflow/schemas/config.schema.yaml`` (`SCHEMA_PATH`) is the single
 definition of the keys; this module applies it (filling defaults) and adds the
 checks a schema cannot express, such as that every source file exists.
 
@@ -22,9 +22,10 @@ import math
 import os
 import stat
 from collections.abc import Iterator, Mapping
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
+from functools import cache
 from pathlib import Path
-from typing import Any
+from typing import Any, ClassVar, Literal, TypeVar
 
 import jsonschema
 import yaml
@@ -38,8 +39,13 @@ __all__ = [
     "RESERVED_COLUMNS",
     "RESERVED_PREFIXES",
     "SCHEMA_PATH",
+    "WORKFLOW_ROOT",
     "AnalysisSettings",
+    "BootstrapSettings",
     "DatabaseSpec",
+    "EstimatorKey",
+    "Gates",
+    "InferenceKey",
     "SourceSpec",
     "analysis_settings",
     "file_kind",
@@ -53,7 +59,19 @@ __all__ = [
 ]
 
 REPO_ROOT = Path(__file__).resolve().parents[2]
-SCHEMA_PATH = REPO_ROOT / "workflow" / "schemas" / "config.schema.yaml"
+"""The repository of a source checkout (meaningless for a non-editable install)."""
+
+_PACKAGED_WORKFLOW = Path(__file__).resolve().parent / "_workflow"
+
+WORKFLOW_ROOT = _PACKAGED_WORKFLOW if (_PACKAGED_WORKFLOW / "Snakefile").is_file() else REPO_ROOT
+"""The folder holding the ``Snakefile`` and ``workflow/{rules,scripts,schemas}``.
+
+A non-editable install carries copies of them inside the package (setup.py puts
+them in ``panelpipe/_workflow``); a source checkout and an editable install use the
+repository's own.
+"""
+
+SCHEMA_PATH = WORKFLOW_ROOT / "workflow" / "schemas" / "config.schema.yaml"
 
 MAX_CONFIG_BYTES = 1 << 20
 """Largest configuration file read (1 MiB); real configs are a few kilobytes."""
@@ -86,6 +104,61 @@ KEY_COLUMN_NAMES: Mapping[str, str] = {
 """Names the unit and period columns may not have: that table (changes.py) uses them."""
 
 
+EstimatorKey = Literal[
+    "pooled_ols",
+    "fixed_effects",
+    "random_effects",
+    "first_difference",
+    "between",
+    "correlated_random_effects",
+]
+InferenceKey = Literal["classical", "robust", "cluster", "driscoll_kraay", "wild_bootstrap"]
+
+
+@cache
+def _schema_defaults(key: str) -> Mapping[str, Any]:
+    """The schema's default of every property of the analysis key ``key`` (an object)."""
+    properties = _schema()["definitions"]["analysis"]["properties"][key]["properties"]
+    return {name: spec["default"] for name, spec in properties.items()}
+
+
+_Filled = TypeVar("_Filled", bound="_SchemaFilled")
+
+
+class _SchemaFilled:
+    """A settings group whose absent keys take the schema's defaults, read in one place."""
+
+    _key: ClassVar[str]
+
+    @classmethod
+    def from_mapping(cls: type[_Filled], given: Mapping[str, Any]) -> _Filled:
+        """From a validated mapping of the group's keys; absent keys take their defaults."""
+        return cls(**{**_schema_defaults(cls._key), **given})
+
+
+@dataclass(frozen=True)
+class BootstrapSettings(_SchemaFilled):
+    """The wild cluster bootstrap's settings (``bootstrap`` in the configuration)."""
+
+    _key: ClassVar[str] = "bootstrap"
+
+    draws: int
+    seed: int
+    weights: Literal["auto", "rademacher", "webb"]
+
+
+@dataclass(frozen=True)
+class Gates(_SchemaFilled):
+    """Thresholds that fail an unattended run before estimation (``gates``)."""
+
+    _key: ClassVar[str] = "gates"
+
+    min_units: int
+    min_periods: int
+    min_clusters: int
+    max_dropped_share: float
+
+
 @dataclass(frozen=True)
 class AnalysisSettings:
     """The settings of one analysis after defaults are filled in."""
@@ -98,11 +171,11 @@ class AnalysisSettings:
     regressors: tuple[str, ...]
     period_effects: bool
     cluster_by: tuple[str, ...]
-    estimators: tuple[str, ...]
-    inference: tuple[str, ...]
+    estimators: tuple[EstimatorKey, ...]
+    inference: tuple[InferenceKey, ...]
     level: float
-    gates: Mapping[str, Any]
-    bootstrap: Mapping[str, Any] = field(default_factory=dict)
+    gates: Gates = field(default_factory=lambda: Gates.from_mapping({}))
+    bootstrap: BootstrapSettings = field(default_factory=lambda: BootstrapSettings.from_mapping({}))
     csv: Mapping[str, Any] = field(default_factory=dict)
 
     @property
@@ -123,8 +196,8 @@ class AnalysisSettings:
             "estimators": list(self.estimators),
             "inference": list(self.inference),
             "level": self.level,
-            "gates": dict(self.gates),
-            "bootstrap": dict(self.bootstrap),
+            "gates": asdict(self.gates),
+            "bootstrap": asdict(self.bootstrap),
             "csv": dict(self.csv),
         }
 
@@ -436,8 +509,8 @@ def analysis_settings(config: Mapping[str, Any], name: str) -> AnalysisSettings:
         estimators=tuple(a["estimators"]),
         inference=tuple(a["inference"]),
         level=float(a["level"]),
-        gates=dict(a["gates"]),
-        bootstrap=dict(a.get("bootstrap") or {}),
+        gates=Gates.from_mapping(a["gates"]),
+        bootstrap=BootstrapSettings.from_mapping(a["bootstrap"]),
         csv=dict(a.get("csv") or {}),
     )
 

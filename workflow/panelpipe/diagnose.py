@@ -1,6 +1,6 @@
 """Diagnose: audit the fixed-effects estimate against the threats to internal validity.
 
-Every row of the audit table in METHODS.md becomes a `Diagnostic`: a status
+Every check in the table below becomes a `Diagnostic`: a status
 (``ok``, ``caution``, ``problem`` or ``not_run`` with the reason), the statistic
 and p-value where a test applies, the effect on the headline (focus) coefficient
 where one can be computed, and one plain sentence on what it means for the
@@ -71,7 +71,7 @@ import scipy.linalg
 import scipy.linalg.lapack
 
 from .bootstrap import wild_cluster_bootstrap
-from .distributions import chi2_sf, f_sf, norm_sf, t_sf
+from .distributions import chi2_sf, f_sf, norm_sf, t_ppf, t_sf
 from .estimate import (
     INFERENCE_LABELS,
     Design,
@@ -1071,7 +1071,7 @@ def _attrition(ctx: _Context) -> Diagnostic:
                 term_index=cols[0],
                 term="present_next_period",
                 draws=int(THRESHOLDS["bootstrap_draws"]),
-                seed=int(ctx.design.settings.bootstrap.get("seed", 0)),
+                seed=ctx.design.settings.bootstrap.seed,
             )
         except ValueError as exc:
             details["wild_bootstrap"] = f"not run: {exc}"
@@ -1901,7 +1901,7 @@ def _bootstrap_effect(ctx: _Context, details: dict[str, Any]) -> dict[str, Any]:
             term=ctx.focus,
             draws=int(THRESHOLDS["bootstrap_draws"]),
             level=ctx.design.settings.level,
-            seed=int(ctx.design.settings.bootstrap.get("seed", 0)),
+            seed=ctx.design.settings.bootstrap.seed,
         )
     except ValueError as exc:
         details["wild_bootstrap"] = f"not run: {exc}"
@@ -2012,6 +2012,7 @@ def _influential_clusters(ctx: _Context) -> Diagnostic:
     cv3 = float(np.sqrt((g - 1) / g * np.nansum(shift**2)))
     t_cv3 = b / cv3 if cv3 > 0 else float("inf")
     p_cv3 = float(2.0 * t_sf(abs(t_cv3), g - 1))
+    crit = float(t_ppf(0.5 + ctx.design.settings.level / 2, g - 1))
     stat = float(abs(shift[worst]) / se)
     labels = [str(c) for c in ix.cluster_labels]
     # Every cluster's estimate when there are few; else the 30 lowest and highest.
@@ -2025,6 +2026,7 @@ def _influential_clusters(ctx: _Context) -> Diagnostic:
         "estimate_without_it": float(loo[worst]),
         "cv3_se": cv3,
         "cr1_se": se,
+        "cr1_interval": [b - crit * se, b + crit * se],
         "cv3_p_value": p_cv3,
         "leave_one_out": {labels[i]: float(loo[i]) for i in order},
     }

@@ -310,10 +310,13 @@ def _transformed(design: Design, key: str) -> np.ndarray:
     if key == "between":
         return demean(group_means(x, unit), np.zeros(int(unit.max()) + 1, dtype=np.intp))
     if key == "first_difference":
+        # No intercept in the differenced regression: without period effects the
+        # differences are used as they are; the differenced period dummies span one
+        # intercept per period that has differences, which demeaning by period removes.
         diff = first_differences(x, design)
-        rows = first_difference_rows(design)
-        groups = period_codes(design)[rows] if two_way else np.zeros(len(rows), dtype=np.intp)
-        return demean(diff, pd.factorize(groups)[0]) if len(rows) else diff
+        if not two_way or not len(diff):
+            return diff
+        return demean(diff, pd.factorize(period_codes(design)[first_difference_rows(design)])[0])
     if key == "fixed_effects":
         return _absorb_two_way(x, design)[0] if two_way else demean(x, unit)
     # pooled, random effects and the Mundlak device keep unit-level variation
@@ -498,7 +501,14 @@ def _columns(estimator: str, design: Design, terms: list[str]) -> tuple[list[str
     d = dummies.to_numpy(dtype=float)
     const = np.ones((n, 1))
     period_names = [str(c) for c in dummies.columns]
-    if estimator in {"fixed_effects", "first_difference"}:
+    if estimator == "first_difference":
+        # A period nobody has a difference in (the first after a period missing for
+        # everybody) leaves its differenced dummy a combination of the others: only
+        # the dummies of periods with differences enter, which span the same intercepts.
+        has_difference = d[first_difference_rows(design)].any(axis=0)
+        kept = [name for name, keep in zip(period_names, has_difference, strict=True) if keep]
+        return [*terms, *kept], np.column_stack([x, d[:, has_difference]])
+    if estimator == "fixed_effects":
         return [*terms, *period_names], np.column_stack([x, d])
     if estimator == "between":
         return [INTERCEPT, *terms], np.column_stack([const, x])
@@ -704,10 +714,10 @@ def _wild_bootstrap(
             clusters,
             term_index=names.index(term),
             term=term,
-            draws=int(opts.get("draws", 9999)),
-            weights=str(opts.get("weights", "auto")),
+            draws=opts.draws,
+            weights=opts.weights,
             level=level,
-            seed=int(opts.get("seed", 20261202)),
+            seed=opts.seed,
         )
         se[term] = abs(result.estimate / result.t_stat) if result.t_stat else np.nan
         p[term], lo[term], hi[term] = result.p_value, result.ci_low, result.ci_high

@@ -166,7 +166,7 @@ def results_document(
     recommended: str,
     reasons: Sequence[str],
 ) -> dict[str, Any]:
-    """The ``results.json`` document, schema_version 1 (CONTRACT.md)."""
+    """The ``results.json`` document, schema_version 1 (README.md, "Where a run lands")."""
     return {
         "schema_version": SCHEMA_VERSION,
         "analysis": analysis,
@@ -178,6 +178,7 @@ def results_document(
         "validation": {"status": status, "findings": [f.to_dict() for f in findings]},
         "models": {
             k: {kk: v for kk, v in m.to_dict().items() if kk not in {"inference", "all_params"}}
+            | _intervals(m)
             | _std_errors_note(m)
             for k, m in models.items()
         },
@@ -193,6 +194,24 @@ BOOTSTRAP_SE_NOTE = (
     "error of its own: its p-values and intervals are in estimates.csv (inference "
     "wild_bootstrap) and in the report."
 )
+
+
+def _intervals(model: ModelResult) -> dict[str, Any]:
+    """``intervals``: per inference, the interval of every reported term at the run's level.
+
+    Beside ``std_errors`` so that a later run can draw this run's intervals as they
+    were published, whatever its own level and reference distributions.
+    """
+    shown = model.to_dict()["params"]
+    return {
+        "intervals": {
+            key: {
+                "ci_low": {t: float(inf.ci_low[t]) for t in shown if t in inf.ci_low.index},
+                "ci_high": {t: float(inf.ci_high[t]) for t in shown if t in inf.ci_high.index},
+            }
+            for key, inf in model.inference.items()
+        }
+    }
 
 
 def _std_errors_note(model: ModelResult) -> dict[str, Any]:
@@ -310,7 +329,7 @@ def paper_tables(
                 cells.append("")
         rows.append((term_label(t), cells))
     rows.append(("rows used", [str(m.nobs) for m in models.values()]))
-    caption = f"Coefficients with {level:.0%} intervals in brackets."
+    caption = f"Coefficients with {level * 100:g}% intervals in brackets."
 
     def md_row(cells: Sequence[str]) -> str:
         return "| " + " | ".join(markdown_cell(c) for c in cells) + " |"
@@ -493,15 +512,15 @@ def loco_figure(diagnostic: Mapping[str, Any]) -> str | None:
     labels = list(loo)
     values = np.array([loo[k] if loo[k] is not None else np.nan for k in labels])
     order = np.argsort(values)
-    est, se = effect.get("estimate"), effect.get("cr1_se")
+    est, band = effect.get("estimate"), effect.get("cr1_interval")
     shown = order if len(order) <= 60 else np.concatenate([order[:30], order[-30:]])
     fig, ax = plt.subplots(figsize=(min(0.16 * len(shown) + 2, 11), 2.8))
     x = np.arange(len(shown))
     ax.plot(x, values[shown], "o", color=_PALETTE[0], ms=3.5)
     if est is not None:
         ax.axhline(est, color=_PALETTE[1], lw=1.2)
-        if se:
-            ax.axhspan(est - 1.96 * se, est + 1.96 * se, color=_PALETTE[1], alpha=0.15)
+        if band:
+            ax.axhspan(band[0], band[1], color=_PALETTE[1], alpha=0.15)
     ax.set_xticks(x)
     ax.set_xticklabels([str(labels[i]) for i in shown], rotation=90, fontsize=6)
     ax.set_ylabel("estimate without the cluster", fontsize=8)
@@ -536,21 +555,34 @@ def residual_figure(fitted: np.ndarray, resid: np.ndarray) -> str:
 
 
 def history_figure(runs: Sequence[Mapping[str, Any]], model: str, term: str) -> str | None:
-    """The headline coefficient of ``model`` across runs, with headline intervals."""
+    """The headline coefficient of ``model`` across runs, with headline intervals.
+
+    Each run's interval is the one it published (``intervals`` in its results.json,
+    at its own level); a run written before intervals were kept there shows the
+    point alone.
+    """
     points = []
     for r in runs:
         m = r["models"].get(model)
         if not m or term not in m["params"]:
             continue
-        se = m["std_errors"].get(m["headline_inference"], {}).get(term)
-        points.append((f"{r['run_id'][:8]}\n(to {r['last_period']})", m["params"][term], se))
+        published = m.get("intervals", {}).get(m["headline_inference"], {})
+        low, high = (published.get(k, {}).get(term) for k in ("ci_low", "ci_high"))
+        value = m["params"][term]
+        bar = (value - low, high - value) if low is not None and high is not None else (0.0, 0.0)
+        points.append((f"{r['run_id'][:8]}\n(to {r['last_period']})", value, bar))
     if len(points) < 2:
         return None
     fig, ax = plt.subplots(figsize=(min(1.1 * len(points) + 2, 10), 2.8))
     x = np.arange(len(points))
-    est = np.array([p[1] for p in points])
-    err = np.array([1.96 * p[2] if p[2] is not None else 0.0 for p in points])
-    ax.errorbar(x, est, yerr=err, fmt="o-", color=_PALETTE[0], capsize=3)
+    ax.errorbar(
+        x,
+        [p[1] for p in points],
+        yerr=np.array([p[2] for p in points]).T,
+        fmt="o-",
+        color=_PALETTE[0],
+        capsize=3,
+    )
     ax.set_xticks(x)
     ax.set_xticklabels([p[0] for p in points], fontsize=7)
     ax.set_ylabel(term, fontsize=8)

@@ -29,7 +29,7 @@ from pathlib import Path
 from typing import Any, Literal
 
 from . import __version__
-from .config import REPO_ROOT, DatabaseSpec, analysis_settings, source_entries
+from .config import WORKFLOW_ROOT, DatabaseSpec, analysis_settings, source_entries
 from .findings import PanelpipeError
 
 __all__ = [
@@ -97,25 +97,32 @@ def file_digest(path: Path | str) -> str:
     return h.hexdigest()
 
 
-def code_fingerprint(root: Path = REPO_ROOT) -> str:
-    """Hash of the package, the workflow rules and scripts and the templates."""
+_PACKAGE = Path(__file__).resolve().parent
+
+
+def code_fingerprint(package: Path = _PACKAGE, root: Path = WORKFLOW_ROOT) -> str:
+    """Hash of the package, its templates, and the workflow's Snakefile, rules and scripts.
+
+    Files are named as in the repository (``workflow/panelpipe/...``), so an editable
+    and a non-editable install of the same code give the same fingerprint; the copy
+    of the workflow inside an installed package is hashed once, as the workflow.
+    """
     h = hashlib.sha256(__version__.encode())
-    patterns = (
-        "workflow/panelpipe/**/*.py",
-        "workflow/panelpipe/templates/*",
-        "workflow/rules/*.smk",
-        "workflow/scripts/*.py",
-        "Snakefile",
-    )
     # Tools that never touch a run's results (benchmark, demo generator, file
     # survey) stay out of the hash, so editing them does not start new runs.
     outside = {"bench.py", "demo.py", "readspeed.py", "survey.py"}
-    files = sorted(
-        {p for pat in patterns for p in root.glob(pat) if p.is_file() and p.name not in outside}
-    )
-    for p in files:
-        h.update(p.relative_to(root).as_posix().encode())
-        h.update(p.read_bytes())
+    code = [
+        p
+        for pat in ("**/*.py", "templates/*")
+        for p in package.glob(pat)
+        if p.is_file() and p.name not in outside and "_workflow" not in p.relative_to(package).parts
+    ]
+    named = {f"workflow/panelpipe/{p.relative_to(package).as_posix()}": p for p in code}
+    for pat in ("workflow/rules/*.smk", "workflow/scripts/*.py", "Snakefile"):
+        named.update({p.relative_to(root).as_posix(): p for p in root.glob(pat) if p.is_file()})
+    for name in sorted(named):
+        h.update(name.encode())
+        h.update(named[name].read_bytes())
     return h.hexdigest()
 
 

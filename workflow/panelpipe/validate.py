@@ -556,7 +556,7 @@ def _summarise(
         ("too_few_units", units, "min_units", s.unit),
         ("too_few_periods", int(n_periods), "min_periods", s.period),
     ):
-        least = int(s.gates.get(key, 2))
+        least = getattr(s.gates, key)
         if n < least:
             out.append(
                 Finding(
@@ -586,7 +586,7 @@ def _check_missing(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding])
     complete = ~missing.any(axis=1)
     dropped = int((~complete).sum())
     share = dropped / len(panel) if len(panel) else 0.0
-    limit = float(s.gates.get("max_dropped_share", 0.5))
+    limit = s.gates.max_dropped_share
     if dropped:
         severity: Severity = "error" if share > limit else "info"
         tail = f", more than the gate max_dropped_share={limit}." if severity == "error" else "."
@@ -715,7 +715,7 @@ def _check_clusters(panel: pd.DataFrame, s: AnalysisSettings, out: list[Finding]
     for col in s.cluster_by:
         sizes = panel.groupby(col, observed=True).size()
         g = len(sizes)
-        least = int(s.gates.get("min_clusters", 2))
+        least = s.gates.min_clusters
         if g < least:
             out.append(
                 Finding(
