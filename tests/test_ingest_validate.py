@@ -7,7 +7,7 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from panelpipe.config import AnalysisSettings, SourceSpec
+from panelpipe.config import AnalysisSettings, Gates, SourceSpec
 from panelpipe.findings import PanelpipeError
 from panelpipe.ingest import read_panel
 from panelpipe.validate import validate_panel
@@ -28,9 +28,10 @@ def settings(**over: object) -> AnalysisSettings:
         estimators=("pooled_ols", "fixed_effects", "random_effects"),
         inference=("classical", "cluster"),
         level=0.95,
-        gates={},
     )
     base.update(over)
+    if isinstance(base.get("gates"), dict):
+        base["gates"] = Gates.from_mapping(base["gates"])
     return AnalysisSettings(**base)
 
 

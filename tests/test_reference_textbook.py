@@ -86,7 +86,6 @@ def models(data: pd.DataFrame) -> dict[str, ModelResult]:
         estimators=("pooled_ols", "fixed_effects", "random_effects", "between"),
         inference=("classical",),
         level=0.95,
-        gates={},
     )
     checked = validate_panel(data, settings)
     assert checked.status == "pass"

@@ -180,6 +180,7 @@ def test_compare_writes_numbers_as_the_report_does() -> None:
             "units_added": [],
             "units_gone": [],
             "revised_cells": 1,
+            "noise_threshold": 1.96,
             "revisions": [
                 {
                     "unit": "007",
