@@ -200,11 +200,19 @@ def test_compare_writes_numbers_as_the_report_does() -> None:
                     "beyond_noise": False,
                 }
             ],
-            "tests": {"hausman": {"old_p": 6.128309589835843e-288, "new_p": 0.04321987}},
+            "tests": {
+                "hausman": {
+                    "name": "Do fixed and random effects disagree? Hausman test, classical",
+                    "old_p": 6.128309589835843e-288,
+                    "new_p": 0.04321987,
+                }
+            },
         }
     )
     # Common practice, no source: p-values below 0.001 are written as "< 0.001".
     assert "p < 0.001 → 0.043" in text
     assert "e-288" not in text and "12.345678901234" not in text
     assert "jobs: 12.3457 → 12.5000" in text
+    # Tests are named as in the report, not by their results.json keys.
+    assert "Do fixed and random effects disagree?" in text and "test hausman" not in text
     assert "1.235e-05 →      0.8123" in text

@@ -310,6 +310,7 @@ def diff_runs(a: RunData, b: RunData) -> dict[str, Any]:
         ta = tests_a.get(key)
         ta = ta if isinstance(ta, dict) else {}
         tests[key] = {
+            "name": tb.get("name", key),
             "old_p": ta.get("p_value"),
             "new_p": tb.get("p_value"),
             "old_statistic": ta.get("statistic"),
@@ -506,5 +507,6 @@ def render_changes(ch: dict[str, Any]) -> str:
             f"  ({z}){mark}"
         )
     for key, t in ch["tests"].items():
-        lines.append(f"  test {key}: p {_pvalue(t['old_p'])} → {_pvalue(t['new_p'])}")
+        name = t.get("name", key)
+        lines.append(f"  {name}: p {_pvalue(t['old_p'])} → {_pvalue(t['new_p'])}")
     return "\n".join(lines)
