@@ -43,7 +43,7 @@ CASES: dict[str, Case] = {
     "sqlite-no-period-column": Case(
         "sqlite:///a.db",
         'SELECT region, jobs, "grant" FROM panel',
-        ["column(s) 'year' not in the result", "it has 'region', 'jobs', 'grant'"],
+        ["column(s) 'year' not found", "the result has 'region', 'jobs', 'grant'"],
     ),
     "sqlite-syntax-error": Case(
         "sqlite:///a.db",
@@ -73,7 +73,7 @@ CASES: dict[str, Case] = {
     "postgresql-no-period-column": Case(
         "postgresql://analyst@{pg}/stats",
         'SELECT region, jobs, "grant" FROM panel',
-        ["column(s) 'year' not in the result; it has 'region', 'jobs', 'grant'"],
+        ["column(s) 'year' not found; the result has 'region', 'jobs', 'grant'"],
     ),
     "postgresql-syntax-error": Case(
         "postgresql://analyst@{pg}/stats",

@@ -21,7 +21,7 @@ import glob
 import math
 import os
 import stat
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import asdict, dataclass, field
 from functools import cache
 from pathlib import Path
@@ -50,6 +50,7 @@ __all__ = [
     "analysis_settings",
     "file_kind",
     "load_config",
+    "renamed_columns",
     "resolve_sources",
     "source_entries",
     "source_files",
@@ -728,6 +729,42 @@ def source_files(
 def resolve_sources(sources: tuple[Any, ...] | list[Any], *, analysis: str) -> list[Path]:
     """The source files in reading order (see `source_files`)."""
     return [path for path, _ in source_files(sources, analysis=analysis)]
+
+
+def renamed_columns(
+    where: str,
+    rename: Mapping[str, str],
+    available: Sequence[str],
+    columns: Sequence[str],
+    *,
+    holder: str,
+    fix: str,
+) -> list[str]:
+    """A source's column names after its 'rename', checked against what the analysis needs.
+
+    ``holder`` names the source in the message ("the file", "the result") and
+    ``fix`` says how to supply a missing column.
+
+    Raises
+    ------
+    PanelpipeError
+        If 'rename' names a column the source lacks, or a needed column is missing.
+    """
+    has = ", ".join(map(repr, available))
+    unknown = sorted(set(rename) - set(available))
+    if unknown:
+        raise PanelpipeError(
+            f"{where}: 'rename' names column(s) {', '.join(map(repr, unknown))} that {holder} "
+            f"does not have; {holder} has {has}."
+        )
+    seen = [rename.get(c, c) for c in available]
+    missing = [c for c in columns if c not in seen]
+    if missing:
+        raise PanelpipeError(
+            f"{where}: column(s) {', '.join(map(repr, missing))} not found; {holder} has "
+            f"{has}. {fix}"
+        )
+    return seen
 
 
 @dataclass(frozen=True)

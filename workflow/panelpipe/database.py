@@ -36,7 +36,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.csv as pacsv
 
-from .config import DatabaseSpec
+from .config import DatabaseSpec, renamed_columns
 from .findings import PanelpipeError
 
 __all__ = [
@@ -275,21 +275,15 @@ def _header(spec: DatabaseSpec, description: Any) -> tuple[list[str], list[str]]
 
 def _named(spec: DatabaseSpec, names: Sequence[str], columns: Sequence[str]) -> list[str]:
     """The result's column names after 'rename'; refuse when a wanted column is missing."""
-    unknown = sorted(set(spec.rename) - set(names))
-    if unknown:
-        raise PanelpipeError(
-            f"{_where(spec)}: 'rename' names column(s) {', '.join(map(repr, unknown))} that "
-            f"the result does not have; it has {', '.join(map(repr, names))}."
-        )
-    seen = [spec.rename.get(c, c) for c in names]
-    missing = [c for c in columns if c not in seen]
-    if missing:
-        raise PanelpipeError(
-            f"{_where(spec)}: column(s) {', '.join(map(repr, missing))} not in the result; "
-            f"it has {', '.join(map(repr, names))}. Select them in the query, or map a "
-            "column of another name with 'rename' on this source."
-        )
-    return seen
+    return renamed_columns(
+        _where(spec),
+        spec.rename,
+        names,
+        columns,
+        holder="the result",
+        fix="Select them in the query, or map a column of another name with 'rename' on "
+        "this source.",
+    )
 
 
 def _empty(spec: DatabaseSpec) -> PanelpipeError:

@@ -46,7 +46,7 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import python_calamine
 
-from .config import DatabaseSpec, SourceSpec, file_kind
+from .config import DatabaseSpec, SourceSpec, file_kind, renamed_columns
 from .database import LABEL_PREFIXES, read_database
 from .findings import PanelpipeError
 
@@ -705,20 +705,15 @@ def read_source(
     source = _open(spec)
     path, available = source.label, source.header
     renamed = {old: new for old, new in spec.rename.items() if old in available}
-    unknown = sorted(set(spec.rename) - set(available))
-    if unknown:
-        raise PanelpipeError(
-            f"{path}: 'rename' names column(s) {', '.join(map(repr, unknown))} that the file "
-            f"does not have; the file has {', '.join(map(repr, available))}."
-        )
-    seen = [renamed.get(c, c) for c in available]
-    missing = [c for c in columns if c not in seen]
-    if missing:
-        raise PanelpipeError(
-            f"{path}: column(s) {', '.join(map(repr, missing))} not found; the file has "
-            f"{', '.join(map(repr, available))}. Fix the column names in the config, or map "
-            "a renamed column with 'rename' on this source."
-        )
+    renamed_columns(
+        path,
+        spec.rename,
+        available,
+        columns,
+        holder="the file",
+        fix="Fix the column names in the config, or map a renamed column with 'rename' on "
+        "this source.",
+    )
     back = {renamed.get(c, c): c for c in available}
     frame, lines = source.read([back[c] for c in columns], [back[c] for c in text])
     frame = frame.rename(columns={back[c]: c for c in columns})[list(columns)]
