@@ -161,3 +161,30 @@ def hostile_table() -> list[list[Any]]:
         region, year, jobs, grant, coastal = line.split(",")
         rows.append([region, int(year), float(jobs), float(grant), int(coastal)])
     return rows
+
+
+def refusal_message(
+    cwd: Path,
+    config: Path,
+    *,
+    whole_run: bool,
+    exit_status: int,
+    monkeypatch: Any,
+    capsys: Any,
+) -> str:
+    """Run a hostile case (`panelpipe run` in a subprocess, or `check` in-process) and
+    return its standard error, asserting that it was refused without a traceback."""
+    from panelpipe.cli import main
+
+    if whole_run:
+        done = run_panelpipe(cwd, "run", "--config", str(config))
+        message = done.stderr
+        assert done.returncode != 0, message
+        assert '"status": "failed"' in done.stdout
+    else:
+        monkeypatch.chdir(cwd)
+        status = main(["check", "--config", str(config)])
+        message = str(capsys.readouterr().err)
+        assert status == exit_status, message
+    assert "Traceback" not in message
+    return message
