@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import os
 import subprocess
 import sys
+import time
 from pathlib import Path
 from typing import Any
 
@@ -188,3 +190,33 @@ def refusal_message(
         assert status == exit_status, message
     assert "Traceback" not in message
     return message
+
+
+def start_paused(
+    cwd: Path, config: Path, point: str | None, mark: Path, *, cores: int | None = None
+) -> subprocess.Popen[str]:
+    """Start ``panelpipe run`` that pauses at fault point ``point`` (DEVELOPERS.md, "Test
+    hook"): the paused process writes its id to ``mark`` and waits for SIGUSR1. The run
+    gets its own process group, as a scheduler would start it."""
+    env = {k: v for k, v in os.environ.items() if not k.startswith("PANELPIPE_FAULT")}
+    if point:
+        env.update(PANELPIPE_FAULT=point, PANELPIPE_FAULT_MARK=str(mark))
+    extra = ["--cores", str(cores)] if cores else []
+    return subprocess.Popen(
+        [sys.executable, "-m", "panelpipe", "run", "--config", str(config), *extra],
+        cwd=cwd,
+        env=env,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        start_new_session=True,
+    )
+
+
+def wait_paused(proc: subprocess.Popen[str], mark: Path) -> None:
+    """Wait until the run reaches its fault point (the mark file), or fail if it ends."""
+    deadline = time.monotonic() + 600
+    while not mark.exists():
+        assert proc.poll() is None, proc.communicate()[1][-3000:]
+        assert time.monotonic() < deadline, "the run never reached its fault point"
+        time.sleep(0.05)

@@ -16,16 +16,20 @@ from __future__ import annotations
 import json
 import os
 import signal
-import subprocess
-import sys
-import time
 from collections.abc import Callable
 from pathlib import Path
 
 import psutil
 import pytest
 
-from _support import HOSTILE_HEADER, hostile_analysis, hostile_rows, write_hostile_config
+from _support import (
+    HOSTILE_HEADER,
+    hostile_analysis,
+    hostile_rows,
+    start_paused,
+    wait_paused,
+    write_hostile_config,
+)
 from panelpipe.runs import SEAL, check_run
 
 pytestmark = pytest.mark.slow
@@ -44,29 +48,6 @@ POINTS = [
     ("report:writing", "report.html"),
     ("seal", SEAL),
 ]
-
-
-def _start(cwd: Path, config: Path, point: str | None, mark: Path) -> subprocess.Popen[str]:
-    env = {k: v for k, v in os.environ.items() if not k.startswith("PANELPIPE_FAULT")}
-    if point:
-        env.update(PANELPIPE_FAULT=point, PANELPIPE_FAULT_MARK=str(mark))
-    return subprocess.Popen(
-        [sys.executable, "-m", "panelpipe", "run", "--config", str(config), "--cores", "1"],
-        cwd=cwd,
-        env=env,
-        stdout=subprocess.PIPE,
-        stderr=subprocess.PIPE,
-        text=True,
-        start_new_session=True,  # its own process group, as a scheduler would start it
-    )
-
-
-def _paused(proc: subprocess.Popen[str], mark: Path) -> None:
-    deadline = time.monotonic() + 600
-    while not mark.exists():
-        assert proc.poll() is None, proc.communicate()[1][-3000:]
-        assert time.monotonic() < deadline, "the run never reached its fault point"
-        time.sleep(0.05)
 
 
 @pytest.mark.parametrize(
@@ -88,8 +69,8 @@ def test_killed_at_every_point_the_next_run_completes(
         if folder is not None and done is not None and (folder / done).exists():
             continue  # finished beside an earlier paused step
         mark = tmp_path / f"paused-{i}"
-        proc = _start(tmp_path, config, point, mark)
-        _paused(proc, mark)
+        proc = start_paused(tmp_path, config, point, mark, cores=1)
+        wait_paused(proc, mark)
         family = psutil.Process(proc.pid).children(recursive=True)
         if modes[i % 2] == "group":
             os.killpg(proc.pid, signal.SIGKILL)
@@ -105,7 +86,7 @@ def test_killed_at_every_point_the_next_run_completes(
         assert check_run(analysis / latest).state == "complete"
         check()
 
-    final = _start(tmp_path, config, None, tmp_path / "unused")
+    final = start_paused(tmp_path, config, None, tmp_path / "unused", cores=1)
     out, err = final.communicate(timeout=600)
     assert final.returncode == 0, err[-3000:]
     (line,) = [json.loads(x) for x in out.splitlines() if x.startswith("{")]

@@ -12,7 +12,6 @@ import os
 import signal
 import subprocess
 import sys
-import time
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -24,6 +23,8 @@ from _support import (
     hostile_analysis,
     hostile_rows,
     run_panelpipe,
+    start_paused,
+    wait_paused,
     write_hostile_config,
 )
 from panelpipe.config import REPO_ROOT, analysis_settings, validate_config
@@ -145,17 +146,9 @@ def test_a_source_changed_while_the_run_starts_is_refused(
     late = range(2024, 2025)
     (tmp_path / "b.csv").write_text(HOSTILE_HEADER + hostile_rows(years=late), encoding="utf-8")
     mark = tmp_path / "paused"
-    env = {**os.environ, "PANELPIPE_FAULT": "ingest", "PANELPIPE_FAULT_MARK": str(mark)}
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "panelpipe", "run", "--config", str(config)],
-        cwd=tmp_path,
-        env=env,
-        stdout=subprocess.PIPE,
-        stderr=subprocess.PIPE,
-        text=True,
-    )
+    proc = start_paused(tmp_path, config, "ingest", mark)
     try:
-        _wait_for(mark, proc)
+        wait_paused(proc, mark)
         # The delivery is still being copied when the ingest step starts.
         more = HOSTILE_HEADER + hostile_rows(units=8, years=late)
         (tmp_path / "b.csv").write_text(more, encoding="utf-8")
@@ -171,15 +164,6 @@ def test_a_source_changed_while_the_run_starts_is_refused(
     assert not (tmp_path / "out" / "t" / line["run_id"] / "work" / "raw.parquet").exists()
     assert (tmp_path / "out" / "t" / "latest").read_text().strip() == earlier
     check()
-
-
-def _wait_for(mark: Path, proc: subprocess.Popen[str]) -> None:
-    """Wait until the run reaches its fault point (the mark file), or fail if it ends."""
-    deadline = time.monotonic() + 600
-    while not mark.exists():
-        assert proc.poll() is None, proc.communicate()[1][-3000:]
-        assert time.monotonic() < deadline, "the run never reached its fault point"
-        time.sleep(0.05)
 
 
 @pytest.mark.slow

@@ -12,8 +12,6 @@ import os
 import signal
 import sqlite3
 import subprocess
-import sys
-import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
@@ -28,6 +26,8 @@ from _support import (
     hostile_rows,
     panel_settings,
     run_panelpipe,
+    start_paused,
+    wait_paused,
     write_hostile_config,
 )
 from panelpipe.config import DatabaseSpec, SourceSpec
@@ -276,21 +276,9 @@ def test_a_table_changed_while_the_run_starts_is_refused(
         tmp_path, hostile_analysis(sources=[{"database": postgres.url(), "query": QUERY}])
     )
     mark = tmp_path / "paused"
-    env = {**os.environ, "PANELPIPE_FAULT": "ingest", "PANELPIPE_FAULT_MARK": str(mark)}
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "panelpipe", "run", "--config", str(config)],
-        cwd=tmp_path,
-        env=env,
-        stdout=subprocess.PIPE,
-        stderr=subprocess.PIPE,
-        text=True,
-    )
+    proc = start_paused(tmp_path, config, "ingest", mark)
     try:
-        deadline = time.monotonic() + 600
-        while not mark.exists():  # wait for the ingest step to reach its fault point
-            assert proc.poll() is None, proc.communicate()[1][-3000:]
-            assert time.monotonic() < deadline, "the run never reached its fault point"
-            time.sleep(0.05)
+        wait_paused(proc, mark)
         with psycopg.connect(postgres.admin(), autocommit=True) as conn:
             conn.execute("UPDATE panel SET \"grant\" = 0.25 WHERE region = '002' AND year = 2019")
         os.kill(int(mark.read_text()), signal.SIGUSR1)

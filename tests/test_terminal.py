@@ -6,9 +6,6 @@ import json
 import os
 import shutil
 import signal
-import subprocess
-import sys
-import time
 from collections.abc import Callable
 from pathlib import Path
 
@@ -19,6 +16,8 @@ from _support import (
     hostile_analysis,
     hostile_rows,
     run_panelpipe,
+    start_paused,
+    wait_paused,
     write_hostile_config,
 )
 from panelpipe.config import REPO_ROOT
@@ -139,22 +138,8 @@ def test_ctrl_c_is_one_line_and_publishes_nothing(
     (tmp_path / "a.csv").write_text(rows, encoding="utf-8")
     config = write_hostile_config(tmp_path, hostile_analysis())
     mark = tmp_path / "paused"
-    env = {k: v for k, v in os.environ.items() if not k.startswith("PANELPIPE_FAULT")}
-    env.update(PANELPIPE_FAULT="report:writing", PANELPIPE_FAULT_MARK=str(mark))
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "panelpipe", "run", "--config", str(config), "--cores", "1"],
-        cwd=tmp_path,
-        env=env,
-        stdout=subprocess.PIPE,
-        stderr=subprocess.PIPE,
-        text=True,
-        start_new_session=True,
-    )
-    deadline = time.monotonic() + 600
-    while not mark.exists():  # waits on the file the paused step writes
-        assert proc.poll() is None, proc.communicate()[1][-3000:]
-        assert time.monotonic() < deadline, "the run never reached the report step"
-        time.sleep(0.05)
+    proc = start_paused(tmp_path, config, "report:writing", mark, cores=1)
+    wait_paused(proc, mark)  # waits on the file the paused step writes
     os.kill(proc.pid, signal.SIGINT)  # what Ctrl-C at a terminal sends
     out, err = proc.communicate(timeout=600)
     assert proc.returncode == 130
