@@ -265,9 +265,7 @@ def _rows(
     keep = np.isfinite(yv) & np.isfinite(dv)
     u_names, u_code = np.unique(u_raw, return_inverse=True)
     p_vals, p_code = np.unique(p_raw, return_inverse=True)
-    labels = [
-        period_labels[v] if period_labels is not None else str(v) for v in p_vals.tolist()
-    ]
+    labels = [period_labels[v] if period_labels is not None else str(v) for v in p_vals.tolist()]
     cl = None if cluster is None else np.unique(np.asarray(cluster), return_inverse=True)[1]
     u_code, p_code, yv, dv = u_code[keep], p_code[keep], yv[keep], dv[keep]
     cl = None if cl is None else cl[keep]
@@ -317,7 +315,7 @@ def _adoption(rows: _Rows) -> tuple[Detection, Int]:
     first_row = np.r_[True, np.diff(u) != 0]
     on = (d == 1.0) & (first_row | np.r_[False, np.diff(d) > 0])
     excluded: dict[str, str] = {}
-    for i in np.flatnonzero(on):
+    for i in np.flatnonzero(on).tolist():
         name = rows.unit_names[u[i]]
         if p[i] == 0:
             adopt[u[i]] = -1
@@ -333,20 +331,17 @@ def _adoption(rows: _Rows) -> tuple[Detection, Int]:
             )
         else:
             adopt[u[i]] = p[i]
-    known = adopt[(adopt >= 0) & (adopt != _NEVER)]
-    values, counts = np.unique(known, return_counts=True)
-    cohorts = {rows.grid_names[v]: int(c) for v, c in zip(values, counts, strict=True)}
+    cohorts = _cohort_counts(adopt, rows.grid_names)
     never = int((adopt == _NEVER).sum())
-    if len(values) >= 2:
+    if len(cohorts) >= 2:
         reason = (
-            f"the treatment switches on in {len(values)} different periods "
+            f"the treatment switches on in {len(cohorts)} different periods "
             f"({', '.join(cohorts)}); {never} units are never treated."
         )
         return Detection(True, reason, cohorts, never, excluded), adopt
-    if len(values) == 1:
+    if len(cohorts) == 1:
         reason = (
-            "all units that switch the treatment on do so in one period "
-            f"({rows.grid_names[values[0]]})."
+            f"all units that switch the treatment on do so in one period ({next(iter(cohorts))})."
         )
     elif excluded:
         reason = (
@@ -356,6 +351,12 @@ def _adoption(rows: _Rows) -> tuple[Detection, Int]:
     else:
         reason = "no unit is ever treated."
     return Detection(False, reason, cohorts, never, excluded), adopt
+
+
+def _cohort_counts(adopt: Int, names: list[str]) -> dict[str, int]:
+    """Units per known adoption period, keyed by the period's label."""
+    values, counts = np.unique(adopt[(adopt >= 0) & (adopt != _NEVER)], return_counts=True)
+    return {names[v]: int(c) for v, c in zip(values.tolist(), counts.tolist(), strict=True)}
 
 
 def detect(
@@ -486,7 +487,7 @@ def _decomposition(
     cell, normalised to sum to one over treated cells; some may be negative.
     """
     Y, adopt, names = panel.Y, panel.adopt, panel.grid_names
-    n, t = Y.shape
+    t = Y.shape[1]
     V = float((Dt * Dt).mean())
     groups = [int(a) for a in np.unique(adopt) if a != _NEVER]
     share = {a: float((adopt == a).mean()) for a in [*groups, _NEVER]}
@@ -588,10 +589,8 @@ def _group_time(panel: _Panel, comparison: Comparison) -> _Cells:
         for p in range(t):
             if p == b:
                 continue
-            if comparison == "never":
-                control = adopt == _NEVER
-            else:
-                control = (adopt > max(p, b)) & ~treated
+            # not yet treated at max(p, b) includes the never treated (_NEVER is large)
+            control = adopt == _NEVER if comparison == "never" else (adopt > max(p, b)) & ~treated
             if not control.any():
                 continue
             dy = Y[:, p] - Y[:, b]
@@ -620,17 +619,17 @@ def _aggregate(adopt: Int, comp_cohort: Int, est: Float, psi: Float) -> tuple[fl
     total = share.sum()
     w = share / total
     theta = float(w @ est)
-    ind = np.column_stack([(adopt == g).astype(float) - s for g, s in zip(comp_cohort, share)])
+    ind = np.column_stack(
+        [(adopt == g).astype(float) - s for g, s in zip(comp_cohort, share, strict=True)]
+    )
     w_psi = (ind * total - share[None, :] * ind.sum(axis=1, keepdims=True)) / total**2
     return theta, psi @ w + w_psi @ est
 
 
 def _cluster_se(psi: Float, cluster: Int) -> Float:
     """Standard errors from influence functions summed within clusters."""
-    n = psi.shape[0]
-    sums = np.zeros((int(cluster.max()) + 1, psi.shape[1]))
-    np.add.at(sums, cluster, psi)
-    out: Float = np.sqrt((sums * sums).sum(axis=0)) / n
+    sums = _cluster_sums(psi, cluster)
+    out: Float = np.sqrt((sums * sums).sum(axis=0)) / psi.shape[0]
     return out
 
 
@@ -722,10 +721,7 @@ def timing_audit(
     if not detection.present:
         return TimingSkipped(detection.reason, detection)
     panel, sample = _balanced(rows, adopt)
-    cohorts = {
-        panel.grid_names[int(a)]: int(c)
-        for a, c in zip(*np.unique(panel.adopt[panel.adopt != _NEVER], return_counts=True))
-    }
+    cohorts = _cohort_counts(panel.adopt, panel.grid_names)
     never = int((panel.adopt == _NEVER).sum())
     if len(cohorts) < 2:
         return TimingSkipped(
