@@ -388,6 +388,8 @@ def test_duplicate_rows_and_unknown_comparison_are_refused() -> None:
         timing_audit(twice["unit"], twice["period"], twice["y"], twice["d"])
     with pytest.raises(PanelpipeError, match="use never or not_yet"):
         timing_audit(df["unit"], df["period"], df["y"], df["d"], comparison="later")  # type: ignore[arg-type]
+    with pytest.raises(PanelpipeError, match="level 95 must lie between"):
+        timing_audit(df["unit"], df["period"], df["y"], df["d"], level=95)
 
 
 def test_results_keys_follow_the_contract() -> None:

@@ -139,7 +139,7 @@ class TimingResult:
     sample: dict[str, Any]
 
     def to_dict(self) -> dict[str, Any]:
-        """The ``timing`` keys of CONTRACT.md, plus documented extensions.
+        """The ``timing`` keys of the interface contract, plus documented extensions.
 
         Extensions: ``decomposition[].comparison_cohort`` (the other cohort, or
         ``never``), ``group_time[].event_time``, ``event_study[].band_low/high``
@@ -653,6 +653,8 @@ def _band_critical(
     n = psi.shape[0]
     rng = np.random.default_rng(seed)
     ok = se > 0
+    if not ok.any():
+        return float("nan")
     stats = np.empty(draws)
     step = max(1, min(draws, 4_000_000 // max(1, sums.shape[0])))
     for start in range(0, draws, step):
@@ -716,6 +718,8 @@ def timing_audit(
         raise PanelpipeError(
             f"timing audit: comparison group {comparison!r} is not known; use never or not_yet."
         )
+    if not 0.5 < level < 1.0:
+        raise PanelpipeError(f"timing audit: level {level} must lie between 0.5 and 1.")
     rows = _rows(unit, period, y, d, cluster, period_labels)
     detection, adopt = _adoption(rows)
     if not detection.present:
