@@ -419,3 +419,20 @@ def test_results_keys_follow_the_contract() -> None:
     assert set(out["overall"]) == {"estimate", "std_error", "ci_low", "ci_high"}
     assert set(out["pre_trends"]) == {"statistic", "df", "p_value"}
     assert set(result.diagnostic()) == {"status", "statistic", "p_value", "message", "details"}
+
+
+def test_clusters_coarser_than_units_and_clusters_that_split_a_unit() -> None:
+    """Clustering by the unit itself changes nothing; a cluster must contain whole
+    units (the influence functions are summed by cluster, Callaway & Sant'Anna
+    2021, Section 4.1), else a clear refusal naming the unit."""
+    df = simulate(43)
+    plain = audit(df)
+    by_unit = audit(df, cluster=df["unit"])
+    assert by_unit.overall == plain.overall
+    region = df["unit"].str[-1]  # ten regions of whole units
+    coarse = audit(df, cluster=region)
+    assert coarse.overall["estimate"] == plain.overall["estimate"]
+    assert coarse.overall["std_error"] != plain.overall["std_error"]
+    split = np.where(df["period"] > 2004, "north", "south")
+    with pytest.raises(PanelpipeError, match=r"unit r000 belongs to more than one cluster"):
+        timing_audit(df["unit"], df["period"], df["y"], df["d"], cluster=split)
