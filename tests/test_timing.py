@@ -255,7 +255,7 @@ def test_homogeneous_effect_leaves_the_diagnostic_quiet() -> None:
 
 @pytest.mark.slow
 def test_band_and_interval_coverage_and_pre_trend_size_over_replications() -> None:
-    """Monte Carlo, 500 replications of 150 units (about 8 s here): nominal 95%.
+    """Monte Carlo, 500 replications of 150 units (8 s alone, 40 s on a busy machine).
 
     Simultaneous bands over all event times (Callaway & Sant'Anna 2021, Section
     4.1) cover the whole true profile, the overall interval covers its truth, and the
