@@ -19,6 +19,7 @@ with a few rows dropped to make gaps; the roles of its columns are arbitrary her
 
 from __future__ import annotations
 
+import json
 import warnings
 from typing import Any
 
@@ -38,6 +39,7 @@ from panelpipe.instruments import (
     dk_bandwidth,
     first_difference_iv,
     fixed_effects_iv,
+    lagged_outcome_finding,
     nickell_bias,
     pooled_iv,
 )
@@ -155,6 +157,10 @@ def test_two_stage_equals_iv2sls_on_transformed_data(
         np.testing.assert_allclose(ours.params, ref.params[names], rtol=1e-9, atol=1e-12)
         cov = ref.cov.loc[names, names].to_numpy()
         np.testing.assert_allclose(ours.covariances[kind], cov, rtol=1e-8, atol=1e-14)
+    out = json.loads(json.dumps(ours.to_dict(), allow_nan=False))  # results.json shape
+    assert set(out["std_errors"]) == set(ours.covariances)
+    assert list(out["first_stage"]) == ENDOG
+    assert {"method", "ci_low", "ci_high"} <= set(out["weak_iv_robust"])
 
 
 @pytest.mark.parametrize("estimator", list(ESTIMATORS))
@@ -349,16 +355,10 @@ def test_anderson_hsiao_recovers_rho_where_fixed_effects_has_nickell_bias() -> N
     for _ in range(40):
         data = _dynamic_panel(rng, n, t, rho)
         y = data.y.reshape(n, t)
-        lagged = IVData(
-            y[:, 1:].ravel(), y[:, :-1].reshape(-1, 1), np.empty((n * (t - 1), 0)),
-            np.empty((n * (t - 1), 0)), np.repeat(np.arange(n), t - 1),
-            np.tile(np.arange(1, t), n), ("lag",), (), (),
-        )  # fmt: skip
         # fixed effects by hand with the within transformation (numpy least squares)
         yw = (y[:, 1:] - y[:, 1:].mean(axis=1, keepdims=True)).ravel()
         xw = (y[:, :-1] - y[:, :-1].mean(axis=1, keepdims=True)).ravel()
         fe.append(float(xw @ yw / (xw @ xw)))
-        del lagged
         ah.append(float(anderson_hsiao(data, ["classical"]).params[0]))
     bias = nickell_bias(rho, t - 1)
     assert bias == pytest.approx(-(1 + rho) / (t - 2), rel=0.5)  # rough size, common practice
@@ -435,10 +435,40 @@ def test_anderson_rubin_ends_reject_at_exactly_five_percent(
 
 
 def test_nickell_bias_small_cases() -> None:
-    """Nickell (1981) from memory: zero bias at rho = 0 is -1/(T-1) ... (common practice:
-    at rho = 0 the bias is exactly -1/T for T periods in the within regression)."""
+    """Nickell's formula as remembered: at rho = 0 it gives exactly -1/T (T periods in the
+    within regression); for large T about -(1 + rho)/(T - 1) (common practice, no source).
+    The simulation above checks it against fixed-effects fits."""
     assert nickell_bias(0.0, 5) == pytest.approx(-1 / 5, rel=1e-12)
-    assert nickell_bias(0.5, 50) == pytest.approx(-(1.5) / 49, rel=0.05)
+    assert nickell_bias(0.5, 50) == pytest.approx(-1.5 / 49, rel=0.05)
+    finding = lagged_outcome_finding("lag_lwage", 0.5, 5)
+    assert finding.code == "lagged_outcome_bias"
+    assert finding.where["approximate_bias"] == pytest.approx(nickell_bias(0.5, 5))
+    assert "anderson_hsiao" in finding.message
+
+
+def test_measurement_error_biases_fixed_effects_and_not_its_iv() -> None:
+    """Simulation, known beta = 1, 60 replications of 300 units x 5 periods: a regressor
+    measured twice with independent errors (noise variance equal to the within variance
+    of the true value). Fixed effects on one measure is attenuated toward 1/2 (classical
+    errors-in-variables, common practice, no source); the within IV with the other
+    measure as instrument is centred on the truth."""
+    rng = np.random.default_rng(1981)
+    n, t, beta = 300, 5, 1.0
+    unit, period = np.repeat(np.arange(n), t), np.tile(np.arange(t), n)
+    ls, iv = [], []
+    for _ in range(60):
+        a = rng.normal(size=n)[unit]
+        true = a + rng.normal(size=n * t)
+        m1, m2 = true + rng.normal(size=n * t), true + rng.normal(size=n * t)
+        y = beta * true + 2 * a + rng.normal(size=n * t)
+        data = IVData(y, np.empty((n * t, 0)), m1[:, None], m2[:, None], unit, period,
+                      (), ("m1",), ("m2",))  # fmt: skip
+        iv.append(float(fixed_effects_iv(data, ["classical"]).params[0]))
+        yw = y - np.bincount(unit, y)[unit] / t
+        xw = m1 - np.bincount(unit, m1)[unit] / t
+        ls.append(float(xw @ yw / (xw @ xw)))
+    assert np.mean(ls) == pytest.approx(0.5, abs=0.03)
+    assert np.mean(iv) == pytest.approx(beta, abs=0.03)
 
 
 # ------------------------------------------------------------------ bad input

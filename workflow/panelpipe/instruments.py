@@ -40,7 +40,7 @@ import pandas as pd
 from scipy import optimize
 
 from .distributions import chi2_sf, f_ppf, f_sf
-from .findings import PanelpipeError
+from .findings import Finding, PanelpipeError
 from .fit import Regression, covariance, demean, demean_two_way, least_squares, triangular_factor
 
 __all__ = [
@@ -52,6 +52,7 @@ __all__ = [
     "dk_bandwidth",
     "first_difference_iv",
     "fixed_effects_iv",
+    "lagged_outcome_finding",
     "nickell_bias",
     "pooled_iv",
 ]
@@ -182,6 +183,26 @@ def nickell_bias(rho: float, periods: int) -> float:
     num = -(1 + rho) / (t - 1) * (1 - a)
     den = 1 - 2 * rho / ((1 - rho) * (t - 1)) * (1 - a)
     return float(num / den)
+
+
+def lagged_outcome_finding(term: str, rho: float, periods: int) -> Finding:
+    """The audit's finding when the outcome's lag is a regressor under fixed effects.
+
+    ``rho`` is the fixed-effects coefficient of the lag, ``periods`` the number of
+    periods per unit in the within regression (the typical unit's). The size is
+    Nickell's approximation at the estimate (a rough guide: the bias is evaluated at
+    the biased value).
+    """
+    bias = nickell_bias(float(np.clip(rho, -0.99, 0.99)), max(periods, 2))
+    return Finding(
+        "lagged_outcome_bias",
+        "warning",
+        f"{term} (the outcome's own lag) is a regressor: with {periods} periods per unit, "
+        f"fixed effects bias its coefficient by about {bias:+.3f} (Nickell 1981), "
+        "downward for a positive persistence. Use anderson_hsiao, which instruments "
+        "the lagged change with the outcome two periods back.",
+        {"term": term, "periods": periods, "approximate_bias": bias},
+    )
 
 
 def _previous(unit: IntArray, period: IntArray) -> IntArray:
@@ -431,7 +452,7 @@ def _identified(panel: _Panel, data: IVData) -> None:
     before = np.r_[scale[:kx], scale[kx + ke :]]
     gone = np.sqrt((z**2).sum(axis=0)) <= 1e-10 * before
     transformation = {
-        "pooled_iv": "removing the period means",
+        "pooled_iv": "removing the mean (the period means with period effects)",
         "fixed_effects_iv": "the within transformation (it is constant within units)",
         "first_difference_iv": "first differences (it never changes between periods)",
         "anderson_hsiao": "first differences (it never changes between periods)",
@@ -469,7 +490,12 @@ def _fit(
     names = data.exog_names + endog_names
     kx, ke, q = panel.exog.shape[1], len(endog_names), len(instrument_names)
     notes = list(panel.notes)
-    available = [k for k in inference if k != "cluster" or panel.clusters is not None]
+    unknown = [k for k in inference if k not in INFERENCE]
+    if unknown:
+        notes.append(f"{', '.join(unknown)}: not available for IV models.")
+    available = [
+        k for k in inference if k in INFERENCE and (k != "cluster" or panel.clusters is not None)
+    ]
     if headline is None:
         headline = "cluster" if panel.clusters is not None else "robust"
     if headline not in available:
