@@ -83,9 +83,11 @@ def _data(d: pd.DataFrame, clusters: list[str] | None, period_effects: bool,
     )
 
 
-def _reference_frame(d: pd.DataFrame, estimator: str, period_effects: bool) -> pd.DataFrame:
+def _reference_frame(
+    d: pd.DataFrame, estimator: str, period_effects: bool, cols: list[str] | None = None
+) -> pd.DataFrame:
     """The transformed rows, built with pandas: columns y, exog, endog, instruments."""
-    cols = ["lwage", *EXOG, *ENDOG, *INSTR]
+    cols = cols or ["lwage", *EXOG, *ENDOG, *INSTR]
     dummies = pd.get_dummies(d["year"], prefix="p", dtype=float)
     if estimator == "pooled_iv":
         out = d[cols].astype(float)
@@ -110,9 +112,11 @@ def _reference_frame(d: pd.DataFrame, estimator: str, period_effects: bool) -> p
     return out.assign(_row=np.flatnonzero(ok))
 
 
-def _reference_fit(frame: pd.DataFrame, **kw: Any) -> Any:
-    exog = frame.drop(columns=["lwage", *ENDOG, *INSTR, "_row"])
-    model = IV2SLS(frame["lwage"], exog, frame[ENDOG], frame[INSTR])
+def _reference_fit(
+    frame: pd.DataFrame, endog: list[str] = ENDOG, instr: list[str] = INSTR, **kw: Any
+) -> Any:
+    exog = frame.drop(columns=["lwage", *endog, *instr, "_row"])
+    model = IV2SLS(frame["lwage"], exog, frame[endog], frame[instr])
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         return model.fit(debiased=True, **kw)
@@ -161,6 +165,26 @@ def test_two_stage_equals_iv2sls_on_transformed_data(
     assert set(out["std_errors"]) == set(ours.covariances)
     assert list(out["first_stage"]) == ENDOG
     assert {"method", "ci_low", "ci_high"} <= set(out["weak_iv_robust"])
+
+
+@pytest.mark.parametrize("estimator", list(ESTIMATORS))
+def test_two_endogenous_terms_equal_iv2sls(estimator: str) -> None:
+    """Reference: linearmodels IV2SLS, two endogenous terms and three instruments,
+    clustered by unit (nested: unit effects not counted), period effects."""
+    d = _wages()
+    endog, instr = ["hours", "union"], ["expersq", "married", "occupation"]
+    ours = ESTIMATORS[estimator](_data(d, ["nr"], True, exog=[], endog=endog, instr=instr))
+    frame = _reference_frame(d, estimator, True, ["lwage", *endog, *instr])
+    groups = pd.Series(d["nr"].to_numpy()[frame["_row"].to_numpy()], index=frame.index)
+    ref = _reference_fit(frame, endog, instr, cov_type="clustered", clusters=groups)
+    names = list(ours.names)
+    assert names == endog
+    np.testing.assert_allclose(ours.params, ref.params[names], rtol=1e-9)
+    np.testing.assert_allclose(ours.covariances["cluster"], ref.cov.loc[names, names], rtol=1e-8)
+    assert set(ours.first_stage) == set(endog)
+    assert ours.effective_f is None  # defined for one endogenous term only
+    assert ours.weak_iv_robust["shape"] == "not_computed"
+    assert ours.overidentification is not None and ours.overidentification["df"] == 1
 
 
 @pytest.mark.parametrize("estimator", list(ESTIMATORS))
@@ -390,6 +414,11 @@ def test_anderson_rubin_set_covers_at_nominal_rate_with_weak_instrument() -> Non
         res = pooled_iv(_weak_iv_draw(rng, 200, beta), ["cluster"])
         shapes[res.weak_iv_robust["shape"]] = shapes.get(res.weak_iv_robust["shape"], 0) + 1
         ar_cover += _covers(res, beta)
+        # Dufour (1997), from memory: the AR set is unbounded exactly when the first-stage
+        # test does not reject (as b grows the AR statistic tends to the first-stage F)
+        fs = res.first_stage["w"]
+        unbounded = res.weak_iv_robust["shape"] in {"two_rays", "whole_line"}
+        assert unbounded == (fs["p_value"] > 0.05)
         se = res.std_errors("cluster")["w"]
         crit = stats.t.ppf(0.975, 49)
         wald_cover += abs(res.params[0] - beta) <= crit * se
@@ -488,7 +517,7 @@ def test_refusals_name_the_terms() -> None:
                        lag_name="lwage_lag")  # fmt: skip
     with pytest.raises(PanelpipeError, match="hours is listed as an instrument"):
         first_difference_iv(_data(d, None, True, instr=["hours", "union"]))
-    with pytest.raises(PanelpipeError, match="collinear with the exogenous"):
+    with pytest.raises(PanelpipeError, match=r"collinear with the exogenous.*twice"):
         pooled_iv(_data(d.assign(twice=2 * d["married"]), None, True, instr=["twice", "union"]))
     with pytest.raises(PanelpipeError, match="at least one term under `endogenous`"):
         pooled_iv(_data(d, None, True, endog=[], instr=["union"]))

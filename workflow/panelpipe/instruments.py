@@ -694,6 +694,15 @@ def _anderson_rubin(
     else:
         shape = "several_pieces"
     bounded = shape == "interval"
+    words = {
+        "interval": "a bounded interval",
+        "two_rays": "unbounded, the union of two rays: the instruments are too weak to "
+        "bound this coefficient",
+        "whole_line": "the whole line: the data do not restrict this coefficient at all",
+        "empty": "empty: no value passes the test, which rejects the instruments' "
+        "exclusion (their over-identifying restrictions) as a whole",
+        "several_pieces": "several disjoint pieces",
+    }
     return {
         "method": method,
         "ci_low": pieces[0][0] if bounded else None,
@@ -701,6 +710,7 @@ def _anderson_rubin(
         "shape": shape,
         "pieces": pieces,
         "level": level,
+        "message": f"The {level:.0%} Anderson-Rubin set is {words[shape]}.",
     }
 
 
