@@ -45,8 +45,11 @@ from panelpipe.instruments import (
 )
 
 EXOG, ENDOG, INSTR = ["married"], ["hours"], ["expersq", "union"]
-ESTIMATORS = {"pooled_iv": pooled_iv, "fixed_effects_iv": fixed_effects_iv,
-              "first_difference_iv": first_difference_iv}  # fmt: skip
+ESTIMATORS = {
+    "pooled_iv": pooled_iv,
+    "fixed_effects_iv": fixed_effects_iv,
+    "first_difference_iv": first_difference_iv,
+}
 
 
 def _wages(n_units: int = 200) -> pd.DataFrame:
@@ -61,9 +64,14 @@ def _wages(n_units: int = 200) -> pd.DataFrame:
     return d
 
 
-def _data(d: pd.DataFrame, clusters: list[str] | None, period_effects: bool,
-          exog: list[str] = EXOG, endog: list[str] = ENDOG,
-          instr: list[str] = INSTR) -> IVData:  # fmt: skip
+def _data(
+    d: pd.DataFrame,
+    clusters: list[str] | None,
+    period_effects: bool,
+    exog: list[str] = EXOG,
+    endog: list[str] = ENDOG,
+    instr: list[str] = INSTR,
+) -> IVData:
     codes = None
     if clusters:
         codes = np.column_stack([pd.factorize(d[c])[0] for c in clusters])
@@ -97,8 +105,10 @@ def _reference_frame(
             out = out.drop(columns=[dummies.columns[0]])
         return out.assign(_row=np.arange(len(d)))
     if estimator == "fixed_effects_iv":
-        both = pd.concat([d[cols].astype(float), dummies.iloc[:, 1:] if period_effects else
-                          dummies.iloc[:, :0]], axis=1)  # fmt: skip
+        both = pd.concat(
+            [d[cols].astype(float), dummies.iloc[:, 1:] if period_effects else dummies.iloc[:, :0]],
+            axis=1,
+        )
         out = both - both.groupby(d["nr"].to_numpy()).transform("mean")
         return out.assign(_row=np.arange(len(d)))
     # first differences over consecutive years of the same unit
@@ -146,10 +156,18 @@ def test_two_stage_equals_iv2sls_on_transformed_data(
     for kind, kw in [
         ("classical", {"cov_type": "unadjusted", "extra_df": effects}),
         ("robust", {"cov_type": "robust", "extra_df": effects}),
-        ("cluster", {"cov_type": "clustered", "extra_df": 0 if nested else effects,
-                     "clusters": d[clusters].iloc[frame["_row"]].reset_index(drop=True)
-                     .set_axis(frame.index)}),
-    ]:  # fmt: skip
+        (
+            "cluster",
+            {
+                "cov_type": "clustered",
+                "extra_df": 0 if nested else effects,
+                "clusters": d[clusters]
+                .iloc[frame["_row"]]
+                .reset_index(drop=True)
+                .set_axis(frame.index),
+            },
+        ),
+    ]:
         cross = estimator == "first_difference_iv" and clusters in (["occupation"], ["nr", "year"])
         if kind == "cluster" and cross:
             # a difference joins two rows of different clusters: left out, with a note
@@ -229,15 +247,22 @@ def test_anderson_hsiao_equals_iv2sls_on_lagged_differences() -> None:
     g = d.groupby("nr")
     lag1, lag2 = g["lwage"].shift(1), g["lwage"].shift(2)
     ok = ((g["year"].diff() == 1) & (g["year"].diff(2) == 2)).to_numpy()
-    frame = pd.DataFrame({
-        "dy": d["lwage"] - lag1, "lwage_lag": lag1 - lag2, "married": g["married"].diff(),
-        "lag2": lag2})[ok]  # fmt: skip
+    frame = pd.DataFrame(
+        {
+            "dy": d["lwage"] - lag1,
+            "lwage_lag": lag1 - lag2,
+            "married": g["married"].diff(),
+            "lag2": lag2,
+        }
+    )[ok]
     dummies = pd.get_dummies(d["year"], dtype=float)[ok]
     dummies = dummies.loc[:, dummies.any()]
     exog = pd.concat([frame[["married"]], dummies], axis=1)
     model = IV2SLS(frame["dy"], exog, frame[["lwage_lag"]], frame[["lag2"]])
-    for kind, kw in [("classical", {"cov_type": "unadjusted"}),
-                     ("cluster", {"cov_type": "clustered", "clusters": d["nr"][ok]})]:  # fmt: skip
+    for kind, kw in [
+        ("classical", {"cov_type": "unadjusted"}),
+        ("cluster", {"cov_type": "clustered", "clusters": d["nr"][ok]}),
+    ]:
         ref = model.fit(debiased=True, **kw)
         names = list(ours.names)
         assert names == ["married", "lwage_lag"]
@@ -255,8 +280,9 @@ def test_first_stage_f_equals_statsmodels_f_test(kind: str) -> None:
     d = _wages()
     ours = pooled_iv(_data(d, ["region"], False), headline=kind)
     x = sm.add_constant(d[EXOG + INSTR].astype(float))
-    fit_kw: dict[str, Any] = {"cov_type": {"classical": "nonrobust", "robust": "HC1",
-                                           "cluster": "cluster"}[kind]}  # fmt: skip
+    fit_kw: dict[str, Any] = {
+        "cov_type": {"classical": "nonrobust", "robust": "HC1", "cluster": "cluster"}[kind]
+    }
     if kind == "cluster":
         fit_kw["cov_kwds"] = {"groups": d["region"].to_numpy()}
     ref = sm.OLS(d["hours"].astype(float), x).fit(**fit_kw)
@@ -299,8 +325,10 @@ def test_overidentification_equals_linearmodels(estimator: str) -> None:
         float(ref.sargan.stat), rel=1e-8
     )
     groups = d["region"].to_numpy()[frame["_row"].to_numpy()]
-    for kind, kw in [("robust", {"weight_type": "robust"}),
-                     ("cluster", {"weight_type": "clustered", "clusters": groups})]:  # fmt: skip
+    for kind, kw in [
+        ("robust", {"weight_type": "robust"}),
+        ("cluster", {"weight_type": "clustered", "clusters": groups}),
+    ]:
         ours = ESTIMATORS[estimator](_data(d, ["region"], True), headline=kind)
         gmm = IVGMM(frame["lwage"], exog, frame[ENDOG], frame[INSTR], **kw).fit(iter_limit=2)
         assert ours.overidentification is not None
@@ -344,10 +372,18 @@ def test_wooldridge_example_15_10_job_training() -> None:
     d = d[d["year"].isin([1987, 1988])].dropna(subset=["lscrap", "hrsemp"])
     d = d[d.groupby("fcode")["year"].transform("size") == 2].sort_values(["fcode", "year"])
     data = IVData(
-        d["lscrap"].to_numpy(float), np.empty((len(d), 0)), d[["hrsemp"]].to_numpy(float),
-        d[["grant"]].to_numpy(float), pd.factorize(d["fcode"])[0], d["year"].to_numpy(),
-        (), ("hrsemp",), ("grant",), period_effects=True, outcome_name="lscrap",
-    )  # fmt: skip
+        d["lscrap"].to_numpy(float),
+        np.empty((len(d), 0)),
+        d[["hrsemp"]].to_numpy(float),
+        d[["grant"]].to_numpy(float),
+        pd.factorize(d["fcode"])[0],
+        d["year"].to_numpy(),
+        (),
+        ("hrsemp",),
+        ("grant",),
+        period_effects=True,
+        outcome_name="lscrap",
+    )
     ours = first_difference_iv(data, headline="classical")
     assert ours.nobs == 45
     assert ours.params[0] == pytest.approx(-0.014, abs=0.0015)
@@ -363,8 +399,18 @@ def _dynamic_panel(rng: np.random.Generator, n: int, t: int, rho: float) -> IVDa
     for s in range(1, t):
         y[:, s] = rho * y[:, s - 1] + a + rng.normal(size=n)
     unit = np.repeat(np.arange(n), t)
-    return IVData(y.ravel(), np.empty((n * t, 0)), np.empty((n * t, 0)), np.empty((n * t, 0)),
-                  unit, np.tile(np.arange(t), n), (), (), (), period_effects=False)  # fmt: skip
+    return IVData(
+        y.ravel(),
+        np.empty((n * t, 0)),
+        np.empty((n * t, 0)),
+        np.empty((n * t, 0)),
+        unit,
+        np.tile(np.arange(t), n),
+        (),
+        (),
+        (),
+        period_effects=False,
+    )
 
 
 def test_anderson_hsiao_recovers_rho_where_fixed_effects_has_nickell_bias() -> None:
@@ -399,8 +445,18 @@ def _weak_iv_draw(rng: np.random.Generator, n: int, beta: float) -> IVData:
     w = 0.12 * z[:, 0] + v
     y = beta * w + u
     groups = np.repeat(np.arange(n // 4), 4)
-    return IVData(y, np.empty((n, 0)), w[:, None], z, groups, np.tile(np.arange(4), n // 4),
-                  (), ("w",), ("z",), clusters=groups)  # fmt: skip
+    return IVData(
+        y,
+        np.empty((n, 0)),
+        w[:, None],
+        z,
+        groups,
+        np.tile(np.arange(4), n // 4),
+        (),
+        ("w",),
+        ("z",),
+        clusters=groups,
+    )
 
 
 def test_anderson_rubin_set_covers_at_nominal_rate_with_weak_instrument() -> None:
@@ -436,9 +492,12 @@ def _covers(res: IVResult, value: float) -> bool:
 
 @pytest.mark.parametrize(
     ("instrument", "kind", "shape"),
-    [("union", "cluster", "two_rays"), ("expersq", "cluster", "interval"),
-     ("union", "classical", "interval")],
-)  # fmt: skip
+    [
+        ("union", "cluster", "two_rays"),
+        ("expersq", "cluster", "interval"),
+        ("union", "classical", "interval"),
+    ],
+)
 def test_anderson_rubin_ends_reject_at_exactly_five_percent(
     instrument: str, kind: str, shape: str
 ) -> None:
@@ -490,8 +549,9 @@ def test_measurement_error_biases_fixed_effects_and_not_its_iv() -> None:
         true = a + rng.normal(size=n * t)
         m1, m2 = true + rng.normal(size=n * t), true + rng.normal(size=n * t)
         y = beta * true + 2 * a + rng.normal(size=n * t)
-        data = IVData(y, np.empty((n * t, 0)), m1[:, None], m2[:, None], unit, period,
-                      (), ("m1",), ("m2",))  # fmt: skip
+        data = IVData(
+            y, np.empty((n * t, 0)), m1[:, None], m2[:, None], unit, period, (), ("m1",), ("m2",)
+        )
         iv.append(float(fixed_effects_iv(data, ["classical"]).params[0]))
         yw = y - np.bincount(unit, y)[unit] / t
         xw = m1 - np.bincount(unit, m1)[unit] / t
@@ -513,11 +573,30 @@ def test_refusals_name_the_terms() -> None:
         fixed_effects_iv(_data(d, None, True, instr=["educ", "union"]))
     lagged = d.assign(lwage_lag=d.groupby("nr")["lwage"].shift(1).fillna(0.0))
     with pytest.raises(PanelpipeError, match="lwage_lag is the lagged outcome"):
-        anderson_hsiao(_data(lagged, None, True, exog=["lwage_lag"], endog=[], instr=[]),
-                       lag_name="lwage_lag")  # fmt: skip
+        anderson_hsiao(
+            _data(lagged, None, True, exog=["lwage_lag"], endog=[], instr=[]), lag_name="lwage_lag"
+        )
     with pytest.raises(PanelpipeError, match="hours is listed as an instrument"):
         first_difference_iv(_data(d, None, True, instr=["hours", "union"]))
     with pytest.raises(PanelpipeError, match=r"collinear with the exogenous.*twice"):
         pooled_iv(_data(d.assign(twice=2 * d["married"]), None, True, instr=["twice", "union"]))
     with pytest.raises(PanelpipeError, match="at least one term under `endogenous`"):
         pooled_iv(_data(d, None, True, endog=[], instr=["union"]))
+
+
+def test_thin_data_refused_or_left_out_with_a_reason() -> None:
+    """Common practice, no source: too few rows, no consecutive periods, one cluster."""
+    d = _wages(60)
+    with pytest.raises(PanelpipeError, match="usable rows after its transformation"):
+        fixed_effects_iv(_data(d.head(4), None, True))
+    every_other = d[d["year"] % 2 == 0]
+    with pytest.raises(PanelpipeError, match="usable rows"):
+        first_difference_iv(_data(every_other, None, True))
+    one = d.assign(one=0)
+    with pytest.raises(PanelpipeError, match="cluster covariance of pooled_iv cannot be computed"):
+        pooled_iv(_data(one, ["one"], True))
+    two = d.assign(two=d["nr"].rank(method="dense").astype(int) % 2)
+    res = pooled_iv(_data(two, ["two"], True), headline="cluster")
+    assert res.overidentification is not None
+    assert res.overidentification["statistic"] is None  # 2 clusters, 3 moments: singular
+    assert "singular" in res.overidentification["method"]

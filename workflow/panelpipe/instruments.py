@@ -390,10 +390,19 @@ def _pooled_panel(data: IVData) -> _Panel:
         v, k = raw - raw.mean(axis=0), 1
     clusters, _ = _clusters_for(data, np.arange(len(data.y)))
     return _split(
-        "pooled_iv", data, v, raw, time=data.period, rows=np.arange(len(data.y)),
-        units=len(np.unique(data.unit)), effects=0, absorbed=k, clusters=clusters,
-        nested=False, notes=(),
-    )  # fmt: skip
+        "pooled_iv",
+        data,
+        v,
+        raw,
+        time=data.period,
+        rows=np.arange(len(data.y)),
+        units=len(np.unique(data.unit)),
+        effects=0,
+        absorbed=k,
+        clusters=clusters,
+        nested=False,
+        notes=(),
+    )
 
 
 def _within_panel(data: IVData) -> _Panel:
@@ -406,9 +415,19 @@ def _within_panel(data: IVData) -> _Panel:
         v, k = demean(raw, unit), 0
     clusters, _ = _clusters_for(data, np.arange(len(data.y)))
     return _split(
-        "fixed_effects_iv", data, v, raw, time=data.period, rows=np.arange(len(data.y)),
-        units=g, effects=g, absorbed=k, clusters=clusters, nested=_nested(data), notes=(),
-    )  # fmt: skip
+        "fixed_effects_iv",
+        data,
+        v,
+        raw,
+        time=data.period,
+        rows=np.arange(len(data.y)),
+        units=g,
+        effects=g,
+        absorbed=k,
+        clusters=clusters,
+        nested=_nested(data),
+        notes=(),
+    )
 
 
 def _differenced(
@@ -425,10 +444,19 @@ def _differenced(
         v, k = demean(v, groups), int(groups.max()) + 1
     clusters, note = _clusters_for(data, rows, before)
     return _split(
-        estimator, data, v, raw, time=data.period[rows], rows=rows,
-        units=len(np.unique(data.unit[rows])), effects=0, absorbed=k, clusters=clusters,
-        nested=False, notes=(note,) if note else (),
-    )  # fmt: skip
+        estimator,
+        data,
+        v,
+        raw,
+        time=data.period[rows],
+        rows=rows,
+        units=len(np.unique(data.unit[rows])),
+        effects=0,
+        absorbed=k,
+        clusters=clusters,
+        nested=False,
+        notes=(note,) if note else (),
+    )
 
 
 def _fd_panel(data: IVData) -> _Panel:
@@ -483,6 +511,13 @@ def _fit(
     bandwidth: float | None,
     level: float,
 ) -> IVResult:
+    k_all = panel.exog.shape[1] + panel.instruments.shape[1] + panel.effects + panel.absorbed
+    if len(panel.y) <= k_all:
+        raise PanelpipeError(
+            f"{panel.estimator} has {len(panel.y)} usable rows after its transformation for "
+            f"{k_all} coefficients and effects: too few to estimate; supply more periods "
+            "or units, or use fewer terms."
+        )
     _identified(panel, data)
     ctx = _Context(panel, bandwidth)
     x = np.column_stack([panel.exog, panel.endog])
@@ -543,10 +578,28 @@ def _fit(
             "weak": bool(stat < WEAK_F),
         }
     effective = _effective_f(ctx, first[0], kx, q, headline) if ke == 1 else None
-    ar = _anderson_rubin(
-        ctx, panel, z, kx, q, ke, headline, level, float(params[kx]),
-        float(np.sqrt(covs[headline][kx, kx])),
-    )  # fmt: skip
+    try:
+        ar = _anderson_rubin(
+            ctx,
+            panel,
+            z,
+            kx,
+            q,
+            ke,
+            headline,
+            level,
+            float(params[kx]),
+            float(np.sqrt(covs[headline][kx, kx])),
+        )
+    except np.linalg.LinAlgError as exc:  # a singular covariance of the AR regression
+        ar = {
+            "method": "Anderson-Rubin test inversion",
+            "ci_low": None,
+            "ci_high": None,
+            "shape": "not_computed",
+            "level": level,
+            "message": f"not computed: {exc}",
+        }
     ar["term"] = endog_names[0]
     return IVResult(
         panel.estimator,
@@ -775,6 +828,11 @@ def _overidentification(
         # (Z'Z)^-1, so undo it and the N/(N-K) factor (and CR1's) to get the sum of scores
         reg = _sandwich(z, u, p.time, p.rows, 0, 0)
         meat = _raw_meat(ctx, reg, kind)
+        if np.linalg.matrix_rank(meat) < meat.shape[0]:
+            why = (
+                f"not computed: the {kind} weight matrix is singular (too few clusters or periods)"
+            )
+            return {"statistic": None, "df": df, "p_value": None, "method": why}
         w = np.linalg.inv(meat)
         zx, zy = z.T @ x, z.T @ p.y
         b = np.linalg.solve(zx.T @ w @ zx, zx.T @ w @ zy)
