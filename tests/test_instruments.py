@@ -186,6 +186,51 @@ def test_two_stage_equals_iv2sls_on_transformed_data(
 
 
 @pytest.mark.parametrize("estimator", list(ESTIMATORS))
+def test_weighted_two_stage_equals_weighted_iv2sls(estimator: str) -> None:
+    """Reference: linearmodels IV2SLS with ``weights`` on rows transformed with pandas
+    (weighted unit means for the within transformation; period dummies; for differences
+    the weight 1/(1/w(t) + 1/w(t-1)), linearmodels FirstDifferenceOLS's convention).
+    The weights are arbitrary positive numbers made from the data's columns."""
+    d = _wages()
+    w = 1.0 + (d["year"] - 1980) / 10.0 * (d["nr"] % 3) + d["married"] / 2
+    data = _data(d, ["nr"], True)
+    ours = ESTIMATORS[estimator](IVData(**{**data.__dict__, "weights": w.to_numpy()}))
+    cols = ["lwage", *EXOG, *ENDOG, *INSTR]
+    dummies = pd.get_dummies(d["year"], prefix="p", dtype=float)
+    if estimator == "pooled_iv":
+        frame = _reference_frame(d, estimator, True)
+        weights = w
+    elif estimator == "fixed_effects_iv":
+        both = pd.concat([d[cols].astype(float), dummies.iloc[:, 1:]], axis=1)
+        unit = d["nr"].to_numpy()
+        means = (
+            both.mul(w, axis=0)
+            .groupby(unit)
+            .transform("sum")
+            .div(w.groupby(unit).transform("sum"), axis=0)
+        )
+        frame = (both - means).assign(_row=np.arange(len(d)))
+        weights = w
+    else:
+        frame = _reference_frame(d, estimator, True)
+        rows = frame["_row"].to_numpy()
+        weights = pd.Series(1 / (1 / w.to_numpy()[rows] + 1 / w.to_numpy()[rows - 1]), frame.index)
+    exog = frame.drop(columns=["lwage", *ENDOG, *INSTR, "_row"])
+    model = IV2SLS(frame["lwage"], exog, frame[ENDOG], frame[INSTR], weights=weights)
+    groups = pd.Series(d["nr"].to_numpy()[frame["_row"].to_numpy()], index=frame.index)
+    effects = d["nr"].nunique() if estimator == "fixed_effects_iv" else 0
+    names = list(ours.names)
+    for kind, kw in [
+        ("classical", {"cov_type": "unadjusted", "extra_df": effects}),
+        ("robust", {"cov_type": "robust", "extra_df": effects}),
+        ("cluster", {"cov_type": "clustered", "clusters": groups}),
+    ]:
+        ref = model.fit(debiased=True, **kw)
+        np.testing.assert_allclose(ours.params, ref.params[names], rtol=1e-9)
+        np.testing.assert_allclose(ours.covariances[kind], ref.cov.loc[names, names], rtol=1e-8)
+
+
+@pytest.mark.parametrize("estimator", list(ESTIMATORS))
 def test_two_endogenous_terms_equal_iv2sls(estimator: str) -> None:
     """Reference: linearmodels IV2SLS, two endogenous terms and three instruments,
     clustered by unit (nested: unit effects not counted), period effects."""

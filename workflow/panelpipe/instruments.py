@@ -41,7 +41,15 @@ from scipy import optimize
 
 from .distributions import chi2_sf, f_ppf, f_sf
 from .findings import Finding, PanelpipeError
-from .fit import Regression, covariance, demean, demean_two_way, least_squares, triangular_factor
+from .fit import (
+    Regression,
+    covariance,
+    demean,
+    demean_two_way,
+    group_sums,
+    least_squares,
+    triangular_factor,
+)
 
 __all__ = [
     "INFERENCE",
@@ -81,6 +89,12 @@ class IVData:
     Rows are sorted by unit, then period. ``period`` holds calendar ordinals (the
     period before ``p`` is ``p - 1``); ``clusters`` holds one or two columns of
     integer codes per row, or None. Names label the columns everywhere.
+
+    With ``weights`` both stages are weighted least squares (as linearmodels'
+    ``weights``): effects are removed with weighted means, then every column is
+    multiplied by the square root of the weight; a first difference has the weight
+    1 / (1/w(t) + 1/w(t-1)) (the inverse variance of a difference of independent
+    errors, linearmodels' FirstDifferenceOLS convention).
     """
 
     y: FloatArray
@@ -95,6 +109,7 @@ class IVData:
     clusters: IntArray | None = None
     period_effects: bool = False
     outcome_name: str = "outcome"
+    weights: FloatArray | None = None  # positive; weighted least squares in both stages
 
     def __post_init__(self) -> None:
         n = len(self.y)
@@ -322,6 +337,13 @@ def _checked(data: IVData, need_endog: bool = True) -> None:
             f"instrument(s) ({', '.join(instr) or 'none'}): the model is not identified; "
             "add instruments or remove endogenous terms."
         )
+    if data.weights is not None:
+        w = np.asarray(data.weights, dtype=float)
+        if w.shape != data.y.shape or not np.all(np.isfinite(w) & (w > 0)):
+            raise PanelpipeError(
+                "Weights must be positive and finite, one per row; "
+                f"{int(np.sum(~(np.isfinite(w) & (w > 0))))} are not: fix or drop those rows."
+            )
     for what, arr, names in (
         ("outcome", data.y[:, None], (data.outcome_name,)),
         ("regressor", data.exog, data.exog_names),
@@ -381,13 +403,25 @@ def _split(estimator: str, data: IVData, both: FloatArray, raw: FloatArray, **kw
     )
 
 
+def _weighted_demean(v: FloatArray, codes: IntArray, w: FloatArray) -> FloatArray:
+    """``v`` minus its weighted means within each code."""
+    g = int(codes.max()) + 1
+    means = group_sums(v * w[:, None], codes, g) / np.bincount(codes, w, minlength=g)[:, None]
+    out: FloatArray = v - means[codes]
+    return out
+
+
 def _pooled_panel(data: IVData) -> _Panel:
     raw = _stack(data)
-    if data.period_effects:
-        codes = _period_codes(data.period)
-        v, k = demean(raw, codes), int(codes.max()) + 1
+    codes = _period_codes(data.period)
+    if not data.period_effects:
+        codes = np.zeros_like(codes)
+    k = int(codes.max()) + 1
+    if data.weights is None:
+        v = demean(raw, codes)
     else:
-        v, k = raw - raw.mean(axis=0), 1
+        w = np.asarray(data.weights, dtype=float)
+        v = _weighted_demean(raw, codes, w) * np.sqrt(w)[:, None]
     clusters, _ = _clusters_for(data, np.arange(len(data.y)))
     return _split(
         "pooled_iv",
@@ -409,7 +443,9 @@ def _within_panel(data: IVData) -> _Panel:
     raw = _stack(data)
     unit = np.unique(data.unit, return_inverse=True)[1].ravel().astype(np.intp)
     g = int(unit.max()) + 1
-    if data.period_effects:
+    if data.weights is not None:
+        v, k = _weighted_within(raw, unit, data)
+    elif data.period_effects:
         v, k = demean_two_way(raw, unit, _period_codes(data.period))
     else:
         v, k = demean(raw, unit), 0
@@ -430,6 +466,34 @@ def _within_panel(data: IVData) -> _Panel:
     )
 
 
+def _weighted_within(raw: FloatArray, unit: IntArray, data: IVData) -> tuple[FloatArray, int]:
+    """Weighted within transformation; period effects as dummies partialled out.
+
+    The dummies are formed (N x T memory) because `fit.demean_two_way` has no weights:
+    weighted unit demeaning, the square root of the weights, then the least-squares
+    projection off the transformed dummies (Frisch-Waugh-Lovell), whose rank is counted.
+    """
+    w = np.asarray(data.weights, dtype=float)
+    root = np.sqrt(w)[:, None]
+    v = _weighted_demean(raw, unit, w) * root
+    if not data.period_effects:
+        return v, 0
+    codes = _period_codes(data.period)
+    dummies = np.eye(int(codes.max()) + 1)[codes]
+    d = _weighted_demean(dummies, unit, w) * root
+    coef, _, rank, _ = np.linalg.lstsq(d, v, rcond=None)
+    out: FloatArray = v - d @ coef
+    return out, int(rank)
+
+
+def _difference_weights(data: IVData, rows: IntArray, prev: IntArray) -> FloatArray | None:
+    if data.weights is None:
+        return None
+    w = np.asarray(data.weights, dtype=float)
+    out: FloatArray = 1.0 / (1.0 / w[rows] + 1.0 / w[prev])
+    return out
+
+
 def _differenced(
     estimator: str,
     data: IVData,
@@ -437,11 +501,15 @@ def _differenced(
     raw: FloatArray,
     rows: IntArray,
     before: Sequence[IntArray],
+    weights: FloatArray | None = None,
 ) -> _Panel:
     k = 0
     if data.period_effects and len(rows):
         groups = pd.factorize(data.period[rows])[0]
-        v, k = demean(v, groups), int(groups.max()) + 1
+        k = int(groups.max()) + 1
+        v = demean(v, groups) if weights is None else _weighted_demean(v, groups, weights)
+    if weights is not None:
+        v = v * np.sqrt(weights)[:, None]
     clusters, note = _clusters_for(data, rows, before)
     return _split(
         estimator,
@@ -464,7 +532,13 @@ def _fd_panel(data: IVData) -> _Panel:
     rows = np.flatnonzero(prev >= 0)
     v = _stack(data)
     return _differenced(
-        "first_difference_iv", data, v[rows] - v[prev[rows]], v[rows], rows, [prev[rows]]
+        "first_difference_iv",
+        data,
+        v[rows] - v[prev[rows]],
+        v[rows],
+        rows,
+        [prev[rows]],
+        _difference_weights(data, rows, prev[rows]),
     )
 
 
@@ -975,7 +1049,10 @@ def anderson_hsiao(
     )
     raw = np.column_stack([v[rows, : 1 + kx], y[prev[rows]], v[rows, 1 + kx :]])
     raw = np.column_stack([raw[:, : 2 + kx + ke], y[prev2[rows]], raw[:, 2 + kx + ke :]])
-    panel = _differenced("anderson_hsiao", shaped, stacked, raw, rows, [prev[rows], prev2[rows]])
+    weights = _difference_weights(data, rows, prev[rows])
+    panel = _differenced(
+        "anderson_hsiao", shaped, stacked, raw, rows, [prev[rows], prev2[rows]], weights
+    )
     return _fit(
         panel,
         shaped,
