@@ -179,6 +179,13 @@ def test_two_stage_equals_iv2sls_on_transformed_data(
         np.testing.assert_allclose(ours.params, ref.params[names], rtol=1e-9, atol=1e-12)
         cov = ref.cov.loc[names, names].to_numpy()
         np.testing.assert_allclose(ours.covariances[kind], cov, rtol=1e-8, atol=1e-14)
+    if estimator != "fixed_effects_iv":  # linearmodels: t df N - K without extra_df; ours N-K-G
+        # t(N - K) p-values and intervals as linearmodels' debiased results give them
+        ref = _reference_fit(frame, cov_type="unadjusted")
+        table = pd.DataFrame(ours.rows()).query("inference == 'classical'").set_index("term")
+        np.testing.assert_allclose(table["p_value"], ref.pvalues[list(ours.names)], rtol=1e-7)
+        ci = ref.conf_int().loc[list(ours.names)]
+        np.testing.assert_allclose(table["ci_low"], ci["lower"], rtol=1e-9)
     out = json.loads(json.dumps(ours.to_dict(), allow_nan=False))  # results.json shape
     assert set(out["std_errors"]) == set(ours.covariances)
     assert list(out["first_stage"]) == ENDOG

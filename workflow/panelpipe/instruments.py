@@ -39,7 +39,7 @@ import numpy as np
 import pandas as pd
 from scipy import optimize
 
-from .distributions import chi2_sf, f_ppf, f_sf
+from .distributions import chi2_sf, f_ppf, f_sf, t_ppf, t_sf
 from .findings import Finding, PanelpipeError
 from .fit import (
     Regression,
@@ -145,10 +145,37 @@ class IVResult:
     weak_iv_robust: dict[str, Any]
     endogeneity: dict[str, Any]
     overidentification: dict[str, Any] | None
+    reference_df: dict[str, int]  # t reference of each inference (see `rows`)
     notes: tuple[str, ...] = field(default=())
 
     def std_errors(self, kind: str) -> dict[str, float]:
         return dict(zip(self.names, np.sqrt(np.diag(self.covariances[kind])).tolist(), strict=True))
+
+    def rows(self, level: float = 0.95) -> list[dict[str, Any]]:
+        """Tidy rows for estimates.csv: t reference with ``reference_df`` degrees of freedom.
+
+        Common practice, no single source (as estimate._reference): t(G-1) for clusters,
+        t(T-1) for Driscoll-Kraay, t(residual df) otherwise.
+        """
+        out = []
+        for kind, cov in self.covariances.items():
+            df = self.reference_df[kind]
+            se = np.sqrt(np.diag(cov))
+            crit = float(t_ppf(0.5 + level / 2, df))
+            for name, b, s in zip(self.names, self.params, se, strict=True):
+                out.append(
+                    {
+                        "model": self.estimator,
+                        "term": name,
+                        "inference": kind,
+                        "estimate": float(b),
+                        "std_error": float(s),
+                        "ci_low": float(b - crit * s),
+                        "ci_high": float(b + crit * s),
+                        "p_value": float(2 * t_sf(abs(b / s), df)),
+                    }
+                )
+        return out
 
     def to_dict(self) -> dict[str, Any]:
         """The model's entry of results.json (CONTRACT.md, "Instruments")."""
@@ -602,15 +629,16 @@ def _fit(
     unknown = [k for k in inference if k not in INFERENCE]
     if unknown:
         notes.append(f"{', '.join(unknown)}: not available for IV models.")
-    available = [
-        k for k in inference if k in INFERENCE and (k != "cluster" or panel.clusters is not None)
-    ]
+
+    def possible(k: str) -> bool:
+        return k in INFERENCE and (k != "cluster" or panel.clusters is not None)
+
     if headline is None:
         headline = "cluster" if panel.clusters is not None else "robust"
-    if headline not in available:
+    if not possible(headline):
         notes.append(f"Headline inference {headline} is not available; robust is used.")
         headline = "robust"
-        available = list(dict.fromkeys([*available, headline]))
+    available = list(dict.fromkeys([*(k for k in inference if possible(k)), headline]))
     # first stage: every endogenous term on all instruments (exogenous ones included)
     first = [
         ctx.regression(panel.endog[:, j], z, data.exog_names + instrument_names) for j in range(ke)
@@ -688,6 +716,7 @@ def _fit(
         ar,
         _endogeneity(ctx, panel, x, names, first, headline),
         _overidentification(ctx, panel, x, z, headline) if q > ke else None,
+        {k: ctx.df_denominator(k, reg.df_resid) for k in covs},
         tuple(notes),
     )
 
