@@ -26,6 +26,15 @@ instrument diagnostics, the Anderson-Rubin set, the control-function test of
 endogeneity and the over-identification test use the covariance kind of the headline
 inference.
 
+Wiring (for the pipeline): build an `IVData` from the validated panel's rows sorted by
+unit and period (outcome, regressors, `endogenous` and `instruments` columns by label;
+unit codes; period ordinals as `estimate.period_ordinals`; cluster codes; weights),
+call ``IV_ESTIMATORS[key](data, inference, headline=...)``, store
+``result.to_dict()`` under ``models[key]``, ``result.endogeneity`` under
+``tests.endogeneity[key]``, and ``result.rows()`` in estimates.csv. For
+`anderson_hsiao` pass the outcome in levels and the regressors without the lagged
+outcome (``lag_name`` labels it). `lagged_outcome_finding` is the audit's finding.
+
 Difference GMM (Arellano & Bond 1991) is not built.
 """
 
@@ -53,6 +62,7 @@ from .fit import (
 
 __all__ = [
     "INFERENCE",
+    "IV_ESTIMATORS",
     "TWINS",
     "IVData",
     "IVResult",
@@ -1092,3 +1102,11 @@ def anderson_hsiao(
         bandwidth,
         level,
     )
+
+
+IV_ESTIMATORS = {
+    "pooled_iv": pooled_iv,
+    "fixed_effects_iv": fixed_effects_iv,
+    "first_difference_iv": first_difference_iv,
+    "anderson_hsiao": anderson_hsiao,
+}
