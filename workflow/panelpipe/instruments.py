@@ -1,7 +1,7 @@
 """Instruments within panels: two-stage least squares after each transformation.
 
 Pure functions over plain arrays; the pipeline wires them in (one entry function per
-estimator key of CONTRACT.md "Instruments"):
+estimator key of the interface contract, "Instruments"):
 
 - `pooled_iv`: the constant (or, with period effects, the period means) partialled out;
 - `fixed_effects_iv`: the within transformation (with period effects both sets removed
@@ -188,7 +188,7 @@ class IVResult:
         return out
 
     def to_dict(self) -> dict[str, Any]:
-        """The model's entry of results.json (CONTRACT.md, "Instruments")."""
+        """The model's entry of results.json (the interface contract, "Instruments")."""
         out: dict[str, Any] = {
             "nobs": self.nobs,
             "units": self.units,
