@@ -13,7 +13,7 @@ from typing import Any
 import numpy as np
 from scipy import special
 
-__all__ = ["chi2_sf", "f_sf", "norm_ppf", "norm_sf", "t_ppf", "t_sf"]
+__all__ = ["chi2_sf", "f_ppf", "f_sf", "norm_ppf", "norm_sf", "t_ppf", "t_sf"]
 
 
 def t_sf(x: Any, df: Any) -> Any:
@@ -44,3 +44,8 @@ def norm_sf(x: Any) -> Any:
 def norm_ppf(q: Any) -> Any:
     """The ``q`` quantile of the standard normal."""
     return special.ndtri(q)
+
+
+def f_ppf(q: Any, df1: Any, df2: Any) -> Any:
+    """The ``q`` quantile of the F distribution with (``df1``, ``df2``) degrees of freedom."""
+    return special.fdtri(df1, df2, q)
